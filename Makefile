@@ -1,0 +1,43 @@
+# Set-up, demo, tests and benchmarks. A fresh machine needs only python3 and make.
+PYTHON ?= python3
+VENV := .venv
+PY := $(VENV)/bin/python
+STAMP := $(VENV)/.installed
+# torch is pinned here (the CPU wheel); the package itself asks only for a range.
+TORCH_PIN := torch==2.13.0
+
+.PHONY: setup demo test bench lint graphviz clean
+
+setup: $(STAMP) graphviz
+
+$(STAMP): pyproject.toml
+	$(PYTHON) -m venv $(VENV)
+	$(PY) -m pip install --quiet --upgrade pip
+	$(PY) -m pip install --quiet $(TORCH_PIN)
+	$(PY) -m pip install --quiet -e ".[dev]"
+	touch $(STAMP)
+
+# graphviz's `dot` renders diagrams; without it colonnade still writes the DOT source.
+graphviz:
+	@if command -v dot >/dev/null 2>&1; then :; \
+	elif [ "$$(id -u)" = "0" ] && command -v apt-get >/dev/null 2>&1; then \
+		echo "installing graphviz (for diagrams)"; \
+		apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq graphviz >/dev/null; \
+	else \
+		echo "note: graphviz's 'dot' is missing; install it (Debian: sudo apt-get install graphviz) to render diagrams"; \
+	fi
+
+demo: setup
+	PATH="$(CURDIR)/$(VENV)/bin:$$PATH" bash examples/demo.sh
+
+test: setup
+	$(PY) -m pytest
+
+bench: setup
+	$(PY) benchmarks/run.py
+
+lint: setup
+	$(VENV)/bin/ruff check src tests examples benchmarks
+
+clean:
+	rm -rf demo-out .pytest_cache

@@ -1,0 +1,468 @@
+"""The grown network: columns, lateral adapters and heads (Rusu et al. 2016).
+
+Invariant: new parts never feed old ones. Column k reads only the input and earlier
+columns, through adapters keyed by (target column, block, source column); a head reads
+its own column and, through head adapters, earlier columns. So a task's logits are a
+function of its *closure* alone, and growing the network cannot move them.
+
+Frozen parts have ``requires_grad=False`` and always run in eval mode; only the parts
+of the task being grown are trainable, and ``train()`` touches only those.
+"""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Iterator
+from dataclasses import asdict, dataclass, field
+from typing import Any
+
+import torch
+import torch.nn as nn
+
+from .adapters import LateralAdapter, make_adapter
+from .errors import DataError, UsageError, WorkspaceError
+from .layers import BlockPlan, ColumnPlan, Shape, build_layer, layer_output_shape, plan_column
+from .spec import Dense, Spec
+
+__all__ = ["ProgressiveNet", "Column", "Block", "TaskInfo", "ColumnInfo", "AdapterInfo",
+           "Closure", "TASK_NAME"]
+
+TASK_NAME = re.compile(r"^[A-Za-z][A-Za-z0-9_-]{0,63}$")
+
+
+@dataclass
+class TaskInfo:
+    """A task: its classes and where its head sits."""
+
+    name: str
+    classes: int
+    column: int
+    mode: str  # "column": it grew its own column; "head": a head on an existing column
+
+
+@dataclass
+class ColumnInfo:
+    index: int
+    task: str  # the task that grew it
+    width: float
+
+
+@dataclass
+class AdapterInfo:
+    """Where a lateral adapter runs: from ``source`` column into a block or a head."""
+
+    key: str
+    kind: str
+    source: int
+    column: int | None = None  # target column, for block adapters
+    block: int | None = None  # target block, for block adapters
+    head: str | None = None  # target task, for head adapters
+    state: str = "live"
+    extra: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def target(self) -> str:
+        if self.head is not None:
+            return f"head {self.head}"
+        return f"column {self.column} block {self.block}"
+
+
+@dataclass(frozen=True)
+class Closure:
+    """Every part a task's output depends on."""
+
+    task: str
+    columns: tuple[int, ...]
+    adapters: tuple[str, ...]
+    head: str
+
+    def state_prefixes(self) -> tuple[str, ...]:
+        """Prefixes of ``state_dict`` keys that belong to this closure."""
+        return (tuple(f"columns.{k}." for k in self.columns)
+                + tuple(f"adapters.{a}." for a in self.adapters)
+                + (f"heads.{self.head}.",))
+
+
+class Block(nn.Module):
+    """A weighted layer and the unweighted layers after it; laterals add in between."""
+
+    def __init__(self, plan: BlockPlan, width: float) -> None:
+        super().__init__()
+        self.weighted = build_layer(plan.weighted, plan.in_shape, width)
+        layers, shape = [], plan.pre_shape
+        for layer in plan.post:
+            layers.append(build_layer(layer, shape, width))
+            shape = layer_output_shape(layer, shape, width)
+        self.post = nn.Sequential(*layers)
+
+
+class Column(nn.Module):
+    """One stack of layers built from the template, serving one task."""
+
+    def __init__(self, spec: Spec, width: float = 1.0) -> None:
+        super().__init__()
+        self.width = width
+        self.plan: ColumnPlan = plan_column(spec, width)
+        stem, shape = [], tuple(spec.input)
+        for layer in self.plan.stem:
+            stem.append(build_layer(layer, shape, width))
+            shape = layer_output_shape(layer, shape, width)
+        self.stem = nn.Sequential(*stem)
+        self.blocks = nn.ModuleList(Block(b, width) for b in self.plan.blocks)
+
+    @property
+    def out_features(self) -> int:
+        return self.plan.out_shape[0]
+
+    def extra_repr(self) -> str:
+        return f"width={self.width}, out={self.out_features}"
+
+
+class ProgressiveNet(nn.Module):
+    """A progressive network grown one column or head per task.
+
+    ``net(x, task=NAME)`` returns that task's logits; ``forward_all(x)`` every task's,
+    computing each column once. ``meta`` carries what the workspace manifest records
+    besides the architecture (training records, growth history, later seals).
+    """
+
+    def __init__(self, spec: Spec) -> None:
+        super().__init__()
+        self.spec = spec
+        self.input_shape: Shape = tuple(spec.input)
+        self.columns = nn.ModuleList()
+        self.adapters = nn.ModuleDict()
+        self.heads = nn.ModuleDict()
+        self.task_info: dict[str, TaskInfo] = {}
+        self.column_info: list[ColumnInfo] = []
+        self.adapter_info: dict[str, AdapterInfo] = {}
+        self.meta: dict[str, Any] = {"history": [], "records": {}}
+        # Extra tensor files of the workspace (file name -> tensors), e.g. seal references.
+        self.attachments: dict[str, dict[str, torch.Tensor]] = {}
+        self._trainable: set[str] = set()
+        self._into: dict[tuple[int, int], list[tuple[str, int]]] = {}
+        self._into_head: dict[str, list[tuple[str, int]]] = {}
+
+    # ----------------------------------------------------------------- inspection
+    @property
+    def tasks(self) -> list[str]:
+        """Task names in growth order."""
+        return list(self.task_info)
+
+    @property
+    def device(self) -> torch.device:
+        for p in self.parameters():
+            return p.device
+        return torch.device("cpu")
+
+    def task(self, name: str) -> TaskInfo:
+        if name not in self.task_info:
+            known = ", ".join(self.task_info) or "none yet"
+            raise WorkspaceError(f"no task named {name!r}; the tasks are: {known}")
+        return self.task_info[name]
+
+    def adapters_into_block(self, column: int, block: int) -> list[tuple[str, int]]:
+        """Live adapters into a block as (key, source column), in source order."""
+        return list(self._into.get((column, block), []))
+
+    def adapters_into_head(self, task: str) -> list[tuple[str, int]]:
+        return list(self._into_head.get(task, []))
+
+    def closure(self, task: str) -> Closure:
+        """Columns and adapters reachable from the task's head through live adapters."""
+        info = self.task(task)
+        adapters: list[str] = []
+        columns = {info.column}
+        for key, source in self._into_head.get(task, []):
+            adapters.append(key)
+            columns.add(source)
+        # Sources always sit to the left of their targets, so one right-to-left pass
+        # over columns collects every transitive dependency.
+        for k in range(info.column, -1, -1):
+            if k not in columns:
+                continue
+            for b in range(len(self.columns[k].blocks)):
+                for key, source in self._into.get((k, b), []):
+                    adapters.append(key)
+                    columns.add(source)
+        return Closure(task, tuple(sorted(columns)), tuple(sorted(adapters)), task)
+
+    def closure_state(self, task: str) -> dict[str, torch.Tensor]:
+        """The parameters and buffers a task's output depends on, by state_dict key."""
+        prefixes = self.closure(task).state_prefixes()
+        return {k: v for k, v in self.state_dict().items() if k.startswith(prefixes)}
+
+    def part_modules(self) -> Iterator[tuple[str, nn.Module]]:
+        """Every part with its id: ``column:K``, ``adapter:KEY``, ``head:TASK``."""
+        for k, col in enumerate(self.columns):
+            yield f"column:{k}", col
+        for key, ad in self.adapters.items():
+            yield f"adapter:{key}", ad
+        for name, head in self.heads.items():
+            yield f"head:{name}", head
+
+    def is_trainable(self, part: str) -> bool:
+        return part in self._trainable
+
+    @property
+    def trainable_parts(self) -> list[str]:
+        return sorted(self._trainable)
+
+    def trainable_parameters(self) -> list[nn.Parameter]:
+        return [p for part, m in self.part_modules() if part in self._trainable
+                for p in m.parameters()]
+
+    def extra_repr(self) -> str:
+        frozen = "all frozen" if not self._trainable else f"training {sorted(self._trainable)}"
+        return (f"input={list(self.input_shape)}, tasks={self.tasks}, "
+                f"lateral={self.spec.lateral.kind}, {frozen}")
+
+    # ----------------------------------------------------------------- forward
+    def _check_input(self, x: torch.Tensor) -> None:
+        if tuple(x.shape[1:]) != self.input_shape:
+            raise DataError(f"input has sample shape {list(x.shape[1:])}, but the network "
+                            f"expects {list(self.input_shape)}")
+
+    def run_columns(self, x: torch.Tensor, columns: list[int] | tuple[int, ...],
+                    given: dict[int, list[torch.Tensor]] | None = None,
+                    ) -> dict[int, list[torch.Tensor]]:
+        """Block outputs of the named columns, in increasing order.
+
+        ``given`` holds block outputs already known (for example cached outputs of frozen
+        columns); those columns are not recomputed. Every source of a live adapter into a
+        listed column must itself be listed or given.
+        """
+        outs: dict[int, list[torch.Tensor]] = dict(given or {})
+        for k in sorted(columns):
+            if k in outs:
+                continue
+            col = self.columns[k]
+            h = col.stem(x)
+            hs: list[torch.Tensor] = []
+            for b, block in enumerate(col.blocks):
+                z = block.weighted(h)
+                for key, source in self._into.get((k, b), []):
+                    z = z + self.adapters[key](outs[source][b - 1])
+                h = block.post(z)
+                hs.append(h)
+            outs[k] = hs
+        return outs
+
+    def head_logits(self, task: str, outs: dict[int, list[torch.Tensor]]) -> torch.Tensor:
+        info = self.task_info[task]
+        logits = self.heads[task](outs[info.column][-1])
+        for key, source in self._into_head.get(task, []):
+            logits = logits + self.adapters[key](outs[source][-1])
+        return logits
+
+    def forward(self, x: torch.Tensor, task: str | None = None) -> torch.Tensor:
+        if task is None:
+            if len(self.task_info) != 1:
+                raise UsageError("this network has several tasks; pass task=NAME")
+            task = self.tasks[0]
+        self.task(task)
+        self._check_input(x)
+        outs = self.run_columns(x, self.closure(task).columns)
+        return self.head_logits(task, outs)
+
+    def forward_all(self, x: torch.Tensor) -> dict[str, torch.Tensor]:
+        """Every task's logits, computing each column once."""
+        self._check_input(x)
+        outs = self.run_columns(x, range(len(self.columns)))
+        return {t: self.head_logits(t, outs) for t in self.task_info}
+
+    # ----------------------------------------------------------------- train / freeze
+    def train(self, mode: bool = True) -> ProgressiveNet:
+        """Only trainable parts follow ``mode``; frozen parts stay in eval mode."""
+        self.training = mode
+        for module in self.children():
+            module.train(False)
+        if mode:
+            for part, module in self.part_modules():
+                if part in self._trainable:
+                    module.train(True)
+        return self
+
+    def freeze(self) -> None:
+        """Freeze everything: no gradients, eval mode, nothing trainable."""
+        for p in self.parameters():
+            p.requires_grad_(False)
+        self._trainable.clear()
+        self.train(False)
+
+    def _make_trainable(self, parts: list[str]) -> None:
+        """The one place parts become trainable; everything else is frozen."""
+        modules = dict(self.part_modules())
+        self.freeze()
+        for part in parts:
+            for p in modules[part].parameters():
+                p.requires_grad_(True)
+            self._trainable.add(part)
+
+    # ----------------------------------------------------------------- growth
+    def _check_new_task(self, name: str, classes: int) -> None:
+        if not TASK_NAME.match(name):
+            raise UsageError(f"task name {name!r} must start with a letter and hold only "
+                             f"letters, digits, '_' or '-' (at most 64 characters)")
+        if name in self.task_info:
+            raise UsageError(f"a task named {name!r} exists already; choose another name")
+        if not isinstance(classes, int) or classes < 2:
+            raise UsageError(f"a task needs at least 2 classes, got {classes}")
+
+    def _register_adapter(self, info: AdapterInfo, module: LateralAdapter) -> None:
+        self.adapters[info.key] = module
+        self.adapter_info[info.key] = info
+        self._reindex()
+
+    def _reindex(self) -> None:
+        into: dict[tuple[int, int], list[tuple[str, int]]] = {}
+        into_head: dict[str, list[tuple[str, int]]] = {}
+        for key, info in self.adapter_info.items():
+            if info.state != "live" or key not in self.adapters:
+                continue
+            if info.head is not None:
+                into_head.setdefault(info.head, []).append((key, info.source))
+            else:
+                into.setdefault((info.column, info.block), []).append((key, info.source))
+        for targets in (into, into_head):
+            for lst in targets.values():
+                lst.sort(key=lambda item: (item[1], item[0]))
+        self._into, self._into_head = into, into_head
+
+    def _block_adapter(self, k: int, b: int, j: int, kind: str | None = None,
+                       ) -> tuple[AdapterInfo, LateralAdapter]:
+        lat = self.spec.lateral
+        kind = kind or lat.kind
+        src, dst = self.columns[j].plan.blocks[b - 1], self.columns[k].plan.blocks[b]
+        module = make_adapter(kind, src.out_shape, dst.pre_shape, dst.weighted,
+                              lat.reduce, lat.activation)
+        return AdapterInfo(f"c{k}_b{b}_from_c{j}", kind, j, column=k, block=b), module
+
+    def _head_adapter(self, task: str, classes: int, j: int, kind: str | None = None,
+                      ) -> tuple[AdapterInfo, LateralAdapter]:
+        lat = self.spec.lateral
+        kind = kind or lat.kind
+        src = self.columns[j].plan.out_shape
+        module = make_adapter(kind, src, (classes,), Dense(dense=classes), lat.reduce,
+                              lat.activation)
+        return AdapterInfo(f"h_{task}_from_c{j}", kind, j, head=task), module
+
+    def _add_head(self, name: str, classes: int, column: int, mode: str) -> list[str]:
+        self.heads[name] = nn.Linear(self.columns[column].out_features, classes)
+        self.task_info[name] = TaskInfo(name, classes, column, mode)
+        parts = [f"head:{name}"]
+        if self.spec.lateral.kind != "none":
+            for j in range(column):
+                info, module = self._head_adapter(name, classes, j)
+                self._register_adapter(info, module)
+                parts.append(f"adapter:{info.key}")
+        return parts
+
+    def add_column(self, name: str, classes: int, width: float = 1.0, seed: int = 0,
+                   ) -> list[str]:
+        """Grow a new column, its adapters from every earlier column, and its head.
+
+        Returns the ids of the new parts, which become the only trainable ones.
+        """
+        self._check_new_task(name, classes)
+        if not (isinstance(width, (int, float)) and 0 < width <= 16):
+            raise UsageError(f"width must be a number in (0, 16], got {width}")
+        device = self.device
+        with torch.random.fork_rng(devices=[]):
+            torch.manual_seed(seed)
+            k = len(self.columns)
+            self.columns.append(Column(self.spec, float(width)))
+            self.column_info.append(ColumnInfo(k, name, float(width)))
+            parts = [f"column:{k}"]
+            if self.spec.lateral.kind != "none":
+                for b in range(1, len(self.columns[k].blocks)):
+                    for j in range(k):
+                        info, module = self._block_adapter(k, b, j)
+                        self._register_adapter(info, module)
+                        parts.append(f"adapter:{info.key}")
+            parts += self._add_head(name, classes, k, "column")
+        self.to(device)
+        self._make_trainable(parts)
+        return parts
+
+    def add_head(self, name: str, classes: int, on: str | None = None, seed: int = 0,
+                 ) -> list[str]:
+        """Grow only a head (and its head adapters) on the column of task ``on``."""
+        self._check_new_task(name, classes)
+        if not self.columns:
+            raise UsageError("the network has no column yet; grow the first task with a column")
+        column = self.task(on).column if on is not None else len(self.columns) - 1
+        device = self.device
+        with torch.random.fork_rng(devices=[]):
+            torch.manual_seed(seed)
+            parts = self._add_head(name, classes, column, "head")
+        self.to(device)
+        self._make_trainable(parts)
+        return parts
+
+    def remove_task(self, name: str) -> None:
+        """Undo the newest growth step (used to roll back a failed grow)."""
+        if not self.tasks or self.tasks[-1] != name:
+            raise UsageError(f"only the newest task can be removed, not {name!r}")
+        info = self.task_info.pop(name)
+        del self.heads[name]
+        for key in [k for k, a in self.adapter_info.items()
+                    if a.head == name or (info.mode == "column" and a.column == info.column)]:
+            del self.adapter_info[key]
+            if key in self.adapters:
+                del self.adapters[key]
+        if info.mode == "column":
+            del self.columns[info.column]
+            self.column_info.pop()
+        self._reindex()
+        self.freeze()
+
+    # ----------------------------------------------------------------- persistence
+    def architecture(self) -> dict[str, Any]:
+        """Everything needed to rebuild the modules, as plain data for the manifest."""
+        return {
+            "tasks": [asdict(t) for t in self.task_info.values()],
+            "columns": [asdict(c) for c in self.column_info],
+            "adapters": [asdict(a) for a in self.adapter_info.values()],
+        }
+
+    @classmethod
+    def from_architecture(cls, spec: Spec, arch: dict[str, Any]) -> ProgressiveNet:
+        """Rebuild the modules (weights uninitialised in meaning) from ``architecture()``."""
+        net = cls(spec)
+        try:
+            for c in arch["columns"]:
+                net.columns.append(Column(spec, float(c["width"])))
+                net.column_info.append(ColumnInfo(int(c["index"]), str(c["task"]),
+                                                  float(c["width"])))
+            for t in arch["tasks"]:
+                info = TaskInfo(str(t["name"]), int(t["classes"]), int(t["column"]),
+                                str(t["mode"]))
+                net.task_info[info.name] = info
+                net.heads[info.name] = nn.Linear(net.columns[info.column].out_features,
+                                                 info.classes)
+            for a in arch["adapters"]:
+                info = AdapterInfo(**a)
+                net.adapter_info[info.key] = info
+                if info.state == "live":
+                    net.adapters[info.key] = net._rebuild_adapter(info)
+        except (KeyError, TypeError, ValueError, IndexError) as exc:
+            raise WorkspaceError(f"the manifest's network section is malformed "
+                                 f"({exc.__class__.__name__}: {exc}); restore it from a "
+                                 f"backup") from None
+        net._reindex()
+        net.freeze()
+        return net
+
+    def _rebuild_adapter(self, info: AdapterInfo) -> LateralAdapter:
+        if info.kind not in ("linear", "nonlinear"):
+            from . import adapters as adapter_kinds
+
+            builder = getattr(adapter_kinds, "rebuild_" + info.kind, None)
+            if builder is None:
+                raise ValueError(f"unknown adapter kind {info.kind!r}")
+            return builder(self, info)
+        if info.head is not None:
+            classes = self.task_info[info.head].classes
+            return self._head_adapter(info.head, classes, info.source, info.kind)[1]
+        return self._block_adapter(info.column, info.block, info.source, info.kind)[1]

@@ -1,0 +1,124 @@
+"""Actions on a workspace folder, one function per CLI verb.
+
+Each loads the workspace, acts through the library, and saves atomically only when the
+action succeeded, so a failure or Ctrl-C leaves the folder exactly as it was.
+"""
+
+from __future__ import annotations
+
+import io
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import torch
+
+from .data import load_task_data
+from .errors import UsageError
+from .fit import EVAL_BATCH, task_logits
+from .growth import grow
+from .network import ProgressiveNet
+from .store import atomic_write, create, load, save
+
+__all__ = ["new_workspace", "grow_workspace", "describe", "predict_file", "parameter_counts"]
+
+
+def new_workspace(spec_path: str | Path, folder: str | Path) -> ProgressiveNet:
+    return create(spec_path, folder)
+
+
+def grow_workspace(folder: str | Path, task: str, train: str | Path, val: str | Path | None = None,
+                   mode: str = "column", on: str | None = None, width: float = 1.0,
+                   classes: int | None = None, epochs: int | None = None,
+                   device: str | None = None, progress: bool = True) -> dict[str, Any]:
+    """Grow one task in a workspace from data files; returns the history entry."""
+    net = load(folder)
+    if task in net.task_info:
+        raise UsageError(f"a task named {task!r} exists already in {folder}; choose another "
+                         f"name")
+    if mode == "head" and not net.columns:
+        raise UsageError("the workspace has no column yet; grow the first task with "
+                         "--mode column")
+    if on is not None:
+        net.task(on)
+    data = load_task_data(train, net.input_shape, classes=classes, val_path=val,
+                          val_fraction=net.spec.train.val_fraction, seed=net.spec.train.seed)
+    entry = grow(net, task, data, mode=mode, on=on, width=width, epochs=epochs, device=device,
+                 progress=progress)
+    save(net, folder)
+    return entry
+
+
+def parameter_counts(net: ProgressiveNet) -> dict[str, int]:
+    """Parameters by part kind, from ``numel`` of the modules themselves."""
+    def count(module: torch.nn.Module) -> int:
+        return sum(p.numel() for p in module.parameters())
+
+    return {
+        "columns": sum(count(c) for c in net.columns),
+        "adapters": sum(count(a) for a in net.adapters.values()),
+        "heads": sum(count(h) for h in net.heads.values()),
+        "total": count(net),
+    }
+
+
+def describe(folder: str | Path) -> dict[str, Any]:
+    """What ``show`` prints: tasks, columns, heads, adapters and parameter counts."""
+    net = load(folder)
+    tasks = []
+    for name, info in net.task_info.items():
+        record = net.meta["records"].get(name, {})
+        closure = net.closure(name)
+        modules = dict(net.part_modules())
+        path_params = sum(p.numel() for part in
+                          [f"column:{k}" for k in closure.columns]
+                          + [f"adapter:{a}" for a in closure.adapters] + [f"head:{name}"]
+                          for p in modules[part].parameters())
+        tasks.append({
+            "task": name, "mode": info.mode, "column": info.column, "classes": info.classes,
+            "val_accuracy": record.get("val_accuracy"),
+            "closure_columns": list(closure.columns), "params_path": path_params,
+        })
+    columns = [{"column": c.index, "task": c.task, "width": c.width,
+                "params": sum(p.numel() for p in net.columns[c.index].parameters())}
+               for c in net.column_info]
+    adapters = [{"key": key, "kind": a.kind, "source": a.source, "target": a.target,
+                 "state": a.state,
+                 "params": sum(p.numel() for p in net.adapters[key].parameters())
+                 if key in net.adapters else 0}
+                for key, a in net.adapter_info.items()]
+    return {
+        "workspace": str(folder),
+        "spec": net.spec.name,
+        "input": list(net.input_shape),
+        "lateral": net.spec.lateral.kind,
+        "tasks": tasks,
+        "columns": columns,
+        "adapters": adapters,
+        "parameters": parameter_counts(net),
+        "history": net.meta["history"],
+    }
+
+
+def predict_file(folder: str | Path, task: str, data: str | Path, out: str | Path,
+                 ) -> dict[str, Any]:
+    """Write ``logits`` and ``pred`` of ``task`` on a data file to an .npz, atomically."""
+    out = Path(out)
+    if out.suffix.lower() != ".npz":
+        raise UsageError(f"{out}: the output must be an .npz file")
+    if not out.parent.is_dir():
+        raise UsageError(f"{out.parent}: no such folder for the output")
+    net = load(folder)
+    info = net.task(task)
+    loaded = load_task_data(data, net.input_shape, classes=info.classes, need_labels=False,
+                            split=False)
+    x, y = loaded.x, loaded.y
+    logits = task_logits(net, task, x, EVAL_BATCH)
+    pred = logits.argmax(1)
+    buf = io.BytesIO()
+    np.savez(buf, logits=logits.numpy(), pred=pred.numpy())
+    atomic_write(out, buf.getvalue())
+    result: dict[str, Any] = {"task": task, "samples": int(x.shape[0]), "output": str(out)}
+    if y.numel():
+        result["accuracy"] = float((pred == y).double().mean())
+    return result
