@@ -99,6 +99,9 @@ def _labels(path: Path, name: str, y: np.ndarray) -> np.ndarray:
             raise DataError(f"{path}: {name} must hold whole-number class labels")
     elif y.dtype.kind not in "iu":
         raise DataError(f"{path}: {name} must hold integer class labels, got {y.dtype}")
+    if y.size and y.min() < 0:
+        raise DataError(f"{path}: {name} holds negative labels (the smallest is "
+                        f"{int(y.min())}); class labels run from 0 to C-1")
     return y.astype(np.int64)
 
 

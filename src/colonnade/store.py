@@ -93,6 +93,8 @@ def _sha256(data: bytes) -> str:
 
 def _commit(folder: Path, files: dict[str, bytes], manifest: dict[str, Any]) -> None:
     """Write data files, then the manifest that names them; see the module docstring."""
+    for stale in folder.glob(".*.tmp"):  # left by a crash during an earlier write
+        stale.unlink(missing_ok=True)
     temps: dict[str, Path] = {}
     try:
         for name, data in files.items():
@@ -106,8 +108,10 @@ def _commit(folder: Path, files: dict[str, bytes], manifest: dict[str, Any]) -> 
             if target.exists():
                 os.link(target, prev)
         for name in files:
-            os.replace(temps.pop(name), folder / name)
-        os.replace(temps.pop(MANIFEST), folder / MANIFEST)
+            os.replace(temps[name], folder / name)
+            del temps[name]
+        os.replace(temps[MANIFEST], folder / MANIFEST)
+        del temps[MANIFEST]
         _fsync_dir(folder)
     finally:
         for tmp in temps.values():

@@ -1,0 +1,98 @@
+"""Shared fixtures: scikit-learn's bundled handwritten digits as continual-learning tasks.
+
+The digits are the UCI optical recognition of handwritten digits data that ships inside
+scikit-learn (``sklearn.datasets.load_digits``), so no download is needed.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import torch
+
+torch.set_num_threads(1)  # a shared 2-core machine; one thread also fixes the kernels used
+
+DIGITS_SPEC = {
+    "name": "digits-mlp",
+    "input": [64],
+    "column": [
+        {"dense": 100},
+        {"norm": "batch"},
+        {"act": "relu"},
+        {"dropout": 0.1},
+        {"dense": 100},
+        {"act": "relu"},
+    ],
+    "lateral": {"kind": "linear"},
+    "train": {"optimizer": "adamw", "lr": 0.002, "weight_decay": 0.01, "epochs": 25,
+              "batch_size": 64, "patience": 5, "seed": 0},
+}
+
+
+def _digits() -> tuple[np.ndarray, np.ndarray]:
+    from sklearn.datasets import load_digits
+
+    d = load_digits()
+    return (d.data / 16.0).astype(np.float32), d.target.astype(np.int64)
+
+
+def permuted_digit_tasks(n_tasks: int, seed: int = 0):
+    """Permuted-pixel tasks: task 0 is the plain digits, task t a fixed random permutation.
+
+    Returns a list of dicts with train and test arrays (a stratified 75/25 split).
+    """
+    from sklearn.model_selection import train_test_split
+
+    x, y = _digits()
+    xtr, xte, ytr, yte = train_test_split(x, y, test_size=0.25, random_state=seed, stratify=y)
+    rng = np.random.default_rng(seed)
+    tasks = []
+    for t in range(n_tasks):
+        perm = np.arange(64) if t == 0 else rng.permutation(64)
+        tasks.append({"name": f"perm{t}", "x": xtr[:, perm], "y": ytr,
+                      "x_test": xte[:, perm], "y_test": yte})
+    return tasks
+
+
+def split_digit_tasks(seed: int = 0):
+    """Split digits: {0,1}, {2,3}, {4,5}, {6,7}, {8,9}, each relabelled 0/1."""
+    from sklearn.model_selection import train_test_split
+
+    x, y = _digits()
+    xtr, xte, ytr, yte = train_test_split(x, y, test_size=0.25, random_state=seed, stratify=y)
+    tasks = []
+    for a in range(0, 10, 2):
+        tr, te = np.isin(ytr, [a, a + 1]), np.isin(yte, [a, a + 1])
+        tasks.append({"name": f"split{a}{a + 1}", "x": xtr[tr], "y": (ytr[tr] - a),
+                      "x_test": xte[te], "y_test": (yte[te] - a)})
+    return tasks
+
+
+def task_data(task: dict, val_fraction: float = 0.2, seed: int = 0):
+    """A colonnade TaskData from a task dict, with a stratified validation split."""
+    from colonnade.data import TaskData, stratified_split
+
+    tr, va = stratified_split(task["y"], val_fraction, seed)
+    return TaskData(torch.from_numpy(task["x"][tr]), torch.from_numpy(task["y"][tr]),
+                    torch.from_numpy(task["x"][va]), torch.from_numpy(task["y"][va]),
+                    int(task["y"].max()) + 1, task["name"])
+
+
+def write_npz(path, task: dict) -> str:
+    np.savez(path, x=task["x"], y=task["y"])
+    return str(path)
+
+
+@pytest.fixture
+def digits_spec() -> dict:
+    import copy
+
+    return copy.deepcopy(DIGITS_SPEC)
+
+
+def snapshot(folder) -> dict[str, bytes]:
+    """Every file of a folder with its bytes, to prove that nothing was written."""
+    from pathlib import Path
+
+    return {str(p.relative_to(folder)): p.read_bytes()
+            for p in sorted(Path(folder).rglob("*")) if p.is_file()}
