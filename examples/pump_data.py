@@ -87,7 +87,7 @@ def _spectra(rng, model: str, sev: dict[str, np.ndarray]) -> np.ndarray:
     a3 = 0.05 * rng.lognormal(0.0, 0.4, n)
     bpf = 0.3 * rng.lognormal(0.0, 0.4, n)
     # Imbalance: 1x grows (common practice: radial 1x dominates).
-    a1 = a1 * (1.0 + 4.0 * sev["imbalance"])
+    a1 = a1 * (1.0 + 5.0 * sev["imbalance"])
     # Misalignment: 2x strong, often above 1x, with some 1x and 3x (common practice).
     mis = sev["misalignment"]
     a2 = a2 + 1.8 * mis * rng.lognormal(0.0, 0.2, n)
@@ -120,7 +120,7 @@ def _spectra(rng, model: str, sev: dict[str, np.ndarray]) -> np.ndarray:
     centre = one(450.0, 750.0)[:, None]
     width = one(120.0, 250.0)[:, None]
     hump = np.exp(-0.5 * ((FREQS[None, :] - centre) / width) ** 2)
-    floor = floor + 0.12 * cav * hump * rng.lognormal(0.0, 0.5, (n, N_BINS))
+    floor = floor + 0.08 * cav * hump * rng.lognormal(0.0, 0.5, (n, N_BINS))
     spec = spec + floor * rng.rayleigh(1.0, (n, N_BINS))
     # Sensor gain varies with mounting and calibration (invented: ~25 %).
     return spec * rng.lognormal(0.0, 0.25, n)[:, None]
@@ -131,20 +131,20 @@ def _severities(rng, name: str, y: np.ndarray) -> dict[str, np.ndarray]:
     n = len(y)
     sev = {k: np.zeros(n) for k in ("imbalance", "misalignment", "bearing", "cavitation")}
     if name == "pump_a_cavitation":
-        sev["cavitation"] = np.where(y == 1, rng.uniform(0.25, 1.0, n), 0.0)
+        sev["cavitation"] = np.where(y == 1, rng.uniform(0.1, 1.0, n), 0.0)
         # Both classes carry random mild mechanical faults as distractors.
         for k in ("imbalance", "misalignment", "bearing"):
             on = rng.random(n) < 0.3
             sev[k] = np.where(on, rng.uniform(0.05, 0.5, n), 0.0)
         return sev
     for label, k in ((1, "imbalance"), (2, "misalignment"), (3, "bearing")):
-        sev[k] = np.where(y == label, rng.uniform(0.15, 1.0, n), 0.0)
+        sev[k] = np.where(y == label, rng.uniform(0.2, 1.0, n), 0.0)
     return sev
 
 
 def _to_features(spec: np.ndarray) -> np.ndarray:
-    """Log-scale amplitudes so peaks and floor share one range (~-1.5..1.5)."""
-    return (np.log10(spec + 1e-4) + 1.0).astype(np.float32)
+    """Log-scale amplitudes so peaks and floor share one range, centred near 0."""
+    return (np.log10(spec + 1e-4) + 1.5).astype(np.float32)
 
 
 def make_task(name: str, n: int, seed: int, stream: int = 0) -> tuple[np.ndarray, np.ndarray]:
@@ -170,6 +170,10 @@ def _atomic_savez(path: str, **arrays) -> None:
     folder = os.path.dirname(os.path.abspath(path))
     fd, tmp = tempfile.mkstemp(dir=folder, prefix="." + os.path.basename(path), suffix=".tmp")
     try:
+        if hasattr(os, "fchmod"):  # mkstemp makes 0600; give the usual mode
+            mask = os.umask(0)
+            os.umask(mask)
+            os.fchmod(fd, 0o666 & ~mask)
         with os.fdopen(fd, "wb") as f:  # a file object stops savez appending ".npz"
             np.savez(f, **arrays)
             f.flush()

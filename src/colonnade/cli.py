@@ -41,6 +41,17 @@ def _positive_float(text: str) -> float:
     return value
 
 
+def _non_negative_float(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number of at least 0, got {text!r}"
+                                         ) from None
+    if not value >= 0 or math.isinf(value):
+        raise argparse.ArgumentTypeError(f"expected a finite number of at least 0, got {text}")
+    return value
+
+
 def _class_count(text: str) -> int:
     value = _positive_int(text)
     if value < 2:
@@ -66,7 +77,7 @@ def table(rows: list[list[Any]], headers: list[str]) -> str:
                for i in range(len(headers))]
     def line(cells: list[str]) -> str:
         return "  ".join(c.rjust(w) if numeric[i] else c.ljust(w)
-                         for i, (c, w) in enumerate(zip(cells, widths))).rstrip()
+                         for i, (c, w) in enumerate(zip(cells, widths, strict=True))).rstrip()
     out = [line(headers), line(["-" * w for w in widths])]
     out += [line(r) for r in text]
     return "\n".join(out)
@@ -115,10 +126,11 @@ def _show(args: argparse.Namespace) -> int:
     else:
         print()
         print(table([[t["task"], t["mode"], t["column"], t["classes"], t["params_path"],
-                      ",".join(map(str, t["closure_columns"])), t["val_accuracy"]]
+                      ",".join(map(str, t["closure_columns"])), t["val_accuracy"],
+                      f"v{t['seal']}" if t.get("seal") else "-"]
                      for t in info["tasks"]],
                     ["task", "mode", "column", "classes", "params on path", "closure columns",
-                     "val accuracy"]))
+                     "val accuracy", "seal"]))
         print()
         print(table([[c["column"], c["task"], c["width"], c["params"]] for c in info["columns"]],
                     ["column", "grown by", "width", "params"]))
@@ -126,6 +138,7 @@ def _show(args: argparse.Namespace) -> int:
         print()
         print(f"{len(live)} live lateral adapters, "
               f"{sum(a['params'] for a in live):,} parameters")
+        _print_transfer(info["transfer"])
     print(f"parameters: {p['total']:,} total = {p['columns']:,} columns + "
           f"{p['adapters']:,} adapters + {p['heads']:,} heads")
     return 0
@@ -140,6 +153,80 @@ def _predict(args: argparse.Namespace) -> int:
     if "accuracy" in result:
         msg += f"; accuracy {result['accuracy']:.4f}"
     print(msg)
+    return 0
+
+
+def _metric(value: float | None) -> str:
+    return "-" if value is None else f"{value:+.4f}"
+
+
+def _print_transfer(rec: dict[str, Any]) -> None:
+    """The accuracy matrix R, the random-network row b, and ACC / BWT / FWT."""
+    tasks = rec["tasks"]
+    if not tasks:
+        return
+    print()
+    print("continual-learning record on validation data (row: after growing that task; "
+          "Lopez-Paz & Ranzato 2017)")
+    rows = [[t, *rec["R"][i]] for i, t in enumerate(tasks)]
+    rows.append(["random network", *rec["random_init"]])
+    print(table(rows, ["after \\ on", *tasks]))
+    acc = "-" if rec["ACC"] is None else f"{rec['ACC']:.4f}"
+    sealed = "" if rec["BWT_sealed"] is None else f" (sealed tasks {_metric(rec['BWT_sealed'])})"
+    print(f"ACC {acc}   BWT {_metric(rec['BWT'])}{sealed}   FWT {_metric(rec['FWT'])}")
+
+
+def _seal(args: argparse.Namespace) -> int:
+    from .seal import seal_workspace
+
+    entry = seal_workspace(args.workspace, args.task, args.probe, device=args.device)
+    m, c = entry["metrics"], entry["closure"]
+    print(f"sealed task {entry['task']!r} as seal v{entry['version']}: closure SHA-256 "
+          f"{c['sha256'][:16]}... over {len(c['tensors'])} tensors, probe accuracy "
+          f"{m['accuracy']:.4f} on {entry['probe']['samples']} samples")
+    return 0
+
+
+def _diff(value: float | None) -> str:
+    if value is None:
+        return "-"
+    return "0" if value == 0 else f"{value:.3g}"
+
+
+def _check(args: argparse.Namespace) -> int:
+    from .verify import check_workspace
+
+    report = check_workspace(args.workspace, task=args.task, tolerance=args.tolerance,
+                             probe=args.probe)
+    if args.json:
+        _print_json(report.to_dict())
+        return 0 if report.passed else 1
+    print(table([[t.task, f"v{t.version}", t.verdict, _diff(t.max_abs_diff),
+                  "-" if t.predictions_agree is None else ("yes" if t.predictions_agree
+                                                           else "no")]
+                 for t in report.tasks],
+                ["task", "seal", "verdict", "max |diff|", "classes agree"]))
+    for t in report.tasks:
+        for sentence in t.failures:
+            print(f"{t.task}: {sentence}.")
+        for sentence in t.notes:
+            print(f"{t.task}: note: {sentence}.")
+    for sentence in report.notes:
+        print(f"note: {sentence}.")
+    passed = sum(t.passed for t in report.tasks)
+    if report.passed:
+        print(f"all {passed} sealed task(s) pass")
+    else:
+        print(f"{len(report.tasks) - passed} of {len(report.tasks)} sealed task(s) fail")
+    return 0 if report.passed else 1
+
+
+def _unseal(args: argparse.Namespace) -> int:
+    from .seal import unseal_workspace
+
+    step = unseal_workspace(args.workspace, args.task, args.reason)
+    print(f"unsealed task {step['task']!r} (seal v{step['version']}) at {step['time']}; "
+          f"reason recorded: {step['reason']}")
     return 0
 
 
@@ -188,6 +275,26 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--task", required=True)
     p.add_argument("--data", required=True, help=".npz or .csv; labels optional")
     p.add_argument("-o", "--output", required=True, help="output .npz")
+    p = verb("seal", _seal, "seal a task: record digests of its closure and its outputs on a "
+                            "probe set")
+    p.add_argument("workspace")
+    p.add_argument("--task", required=True)
+    p.add_argument("--probe", required=True, help="labelled probe data (.npz or .csv)")
+    p.add_argument("--device", default="cpu", help="where the reference is computed: cpu "
+                                                   "(default) or cuda")
+
+    p = verb("check", _check, "check every seal: same closure, same probe outputs, bit for bit")
+    p.add_argument("workspace")
+    p.add_argument("--task", help="check only this task")
+    p.add_argument("--tolerance", type=_non_negative_float,
+                   help="accept logits within this absolute difference (for other hardware)")
+    p.add_argument("--probe", help="with --task: read the probe from this file instead")
+    p.add_argument("--json", action="store_true")
+
+    p = verb("unseal", _unseal, "lift a task's seal, with a reason kept in the history")
+    p.add_argument("workspace")
+    p.add_argument("--task", required=True)
+    p.add_argument("--reason", required=True, help="why the certificate is lifted")
     return parser
 
 

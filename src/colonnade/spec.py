@@ -7,7 +7,7 @@ because a spec is written by hand and a bare pydantic dump helps nobody.
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Annotated, Any, Literal, Union
+from typing import Annotated, Any, Union
 
 import yaml
 from pydantic import BaseModel, BeforeValidator, ConfigDict, ValidationError, model_validator
@@ -97,6 +97,12 @@ def _true(v: Any) -> bool:
     if v is not True:
         raise _fail("flatten", "true", v)
     return True
+
+
+def _bool(v: Any) -> bool:
+    if not isinstance(v, bool):
+        raise _fail("bool", "true or false", v)
+    return v
 
 
 def _choice(*options: str):
@@ -203,7 +209,7 @@ class Flatten(_Strict):
         return False
 
 
-LayerSpec = Union[Dense, Conv1d, Conv2d, Norm, Act, Dropout, Pool, Flatten]
+LayerSpec = Union[Dense, Conv1d, Conv2d, Norm, Act, Dropout, Pool, Flatten]  # noqa: UP007
 _LAYER_KINDS: dict[str, type[_Strict]] = {
     "dense": Dense,
     "conv1d": Conv1d,
@@ -237,6 +243,10 @@ class TrainSpec(_Strict):
     patience: NonNegInt = 5
     seed: NonNegInt = 0
     val_fraction: Annotated[float, BeforeValidator(_probability)] = 0.2
+    # Reuse frozen columns' outputs across epochs (cache.py); cache_mb caps what is held in
+    # memory (MiB), the rest spills to a temporary memory-mapped file.
+    cache: Annotated[bool, BeforeValidator(_bool)] = True
+    cache_mb: NonNegFloat = 1024.0
 
     @model_validator(mode="after")
     def _options_fit_optimizer(self) -> TrainSpec:
