@@ -15,7 +15,7 @@ import torch.nn.functional as F
 from conftest import permuted_digit_tasks, task_data
 
 import colonnade
-from colonnade.fit import evaluate, task_logits, make_optimizer
+from colonnade.fit import evaluate, make_optimizer, task_logits
 from colonnade.spec import parse_spec
 
 N_TASKS = 5

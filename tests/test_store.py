@@ -7,12 +7,12 @@ import os
 import pytest
 import torch
 import yaml
+from conftest import snapshot
 
 from colonnade import store
 from colonnade.errors import WorkspaceError
 from colonnade.network import ProgressiveNet
 from colonnade.spec import parse_spec
-from conftest import snapshot
 
 SPEC = {"input": [8], "column": [{"dense": 6}, {"norm": "batch"}, {"act": "relu"},
                                  {"dense": 4}, {"act": "relu"}],

@@ -10,6 +10,8 @@ so the lateral lands on the same positions as the target's own output.
 colonnade keeps one adapter per (earlier column, target layer) pair, where the paper
 concatenates all earlier columns before V. With one earlier column the two coincide;
 per-source adapters are what lets usage be measured and adapters be pruned one by one.
+``JointAdapter`` is what a merge leaves: one low-rank map U V over the concatenated
+outputs of several earlier columns, fitted to reproduce their adapters' summed output.
 Adapters have no bias: the target layer's own bias already covers it.
 """
 
@@ -21,7 +23,8 @@ import torch.nn as nn
 from .layers import Shape, make_activation
 from .spec import Conv1d, Conv2d, LayerSpec
 
-__all__ = ["LateralAdapter", "LinearAdapter", "NonlinearAdapter", "make_adapter"]
+__all__ = ["LateralAdapter", "LinearAdapter", "NonlinearAdapter", "JointAdapter",
+           "make_adapter", "rebuild_joint"]
 
 
 def _target_map(target: LayerSpec, in_channels: int, out_channels: int) -> nn.Module:
@@ -86,11 +89,49 @@ class NonlinearAdapter(LateralAdapter):
         self.act = make_activation(activation)
         self.U = _target_map(target, self.rank, target_shape[0])
 
+    def reset_parameters(self) -> None:
+        nn.init.ones_(self.alpha)
+        self.V.reset_parameters()
+        self.U.reset_parameters()
+
     def forward(self, h: torch.Tensor) -> torch.Tensor:
         return self.U(self.act(self.V(self.alpha * h)))
 
     def extra_repr(self) -> str:
         return f"{super().extra_repr()}, rank={self.rank}, act={self.activation_name}"
+
+
+class JointAdapter(LateralAdapter):
+    """U V [h_1; ...; h_n]: one rank-``rank`` map from several columns at once.
+
+    V carries the target layer's kernel, stride and padding (a plain matrix for dense
+    targets), U is pointwise, so at full rank the pair equals any sum of linear adapters
+    from those columns exactly. Sources are concatenated along the feature (channel) axis.
+    """
+
+    kind = "joint"
+
+    def __init__(self, source_shapes: list[Shape], target_shape: Shape, target: LayerSpec,
+                 rank: int) -> None:
+        channels = sum(int(s[0]) for s in source_shapes)
+        super().__init__((channels, *source_shapes[0][1:]), target_shape)
+        self.source_shapes = [tuple(s) for s in source_shapes]
+        self.rank = int(rank)
+        self.V = _target_map(target, channels, self.rank)
+        self.U = _pointwise(target, self.rank, target_shape[0])
+
+    def forward(self, h: torch.Tensor) -> torch.Tensor:
+        return self.U(self.V(h))
+
+    def extra_repr(self) -> str:
+        return f"{super().extra_repr()}, sources={len(self.source_shapes)}, rank={self.rank}"
+
+
+def rebuild_joint(net, info) -> JointAdapter:  # noqa: ANN001 (a ProgressiveNet, AdapterInfo)
+    """Rebuild a joint adapter from its manifest record (``extra``: sources, rank)."""
+    shapes, target_shape, target = net.lateral_geometry(info.sources, info.column,
+                                                        info.block, info.head)
+    return JointAdapter(shapes, target_shape, target, int(info.extra["rank"]))
 
 
 def make_adapter(kind: str, source_shape: Shape, target_shape: Shape, target: LayerSpec,

@@ -103,7 +103,8 @@ def _grow(args: argparse.Namespace) -> int:
 
     entry = grow_workspace(args.workspace, args.task, args.train, val=args.val, mode=args.mode,
                            on=args.on, width=args.width, classes=args.classes,
-                           epochs=args.epochs, device=args.device, progress=not args.quiet)
+                           epochs=args.epochs, device=args.device, progress=not args.quiet,
+                           cache=False if args.no_cache else None, cache_mb=args.cache_mb)
     what = (f"a column (column {entry['column']}, width {entry['width']:g})"
             if entry["step"] == "column_added" else f"a head on column {entry['column']}")
     print(f"grew task {entry['task']!r} as {what}: {entry['params_added']:,} new parameters, "
@@ -132,7 +133,8 @@ def _show(args: argparse.Namespace) -> int:
                     ["task", "mode", "column", "classes", "params on path", "closure columns",
                      "val accuracy", "seal"]))
         print()
-        print(table([[c["column"], c["task"], c["width"], c["params"]] for c in info["columns"]],
+        print(table([[c["column"], c["task"], f"{c['width']:g}", c["params"]]
+                     for c in info["columns"]],
                     ["column", "grown by", "width", "params"]))
         live = [a for a in info["adapters"] if a["state"] == "live"]
         print()
@@ -147,7 +149,13 @@ def _show(args: argparse.Namespace) -> int:
 def _predict(args: argparse.Namespace) -> int:
     from .workspace import predict_file
 
-    result = predict_file(args.workspace, args.task, args.data, args.output)
+    result = predict_file(args.workspace, args.task, args.data, args.output,
+                          all_tasks=args.all)
+    if args.all:
+        print(f"wrote logits and predictions of {len(result['tasks'])} tasks "
+              f"({', '.join(result['tasks'])}) for {result['samples']} samples to "
+              f"{result['output']} (arrays logits_TASK, pred_TASK)")
+        return 0
     msg = f"wrote logits and predictions of task {result['task']!r} for " \
           f"{result['samples']} samples to {result['output']}"
     if "accuracy" in result:
@@ -213,11 +221,14 @@ def _check(args: argparse.Namespace) -> int:
             print(f"{t.task}: note: {sentence}.")
     for sentence in report.notes:
         print(f"note: {sentence}.")
-    passed = sum(t.passed for t in report.tasks)
-    if report.passed:
-        print(f"all {passed} sealed task(s) pass")
+    n, passed = len(report.tasks), sum(t.passed for t in report.tasks)
+    exact = sum(t.verdict == "exact" for t in report.tasks)
+    if exact == n:
+        print(f"all {n} sealed task(s) check exact")
+    elif report.passed:
+        print(f"all {n} sealed task(s) pass: {exact} exact, {n - exact} within the tolerance")
     else:
-        print(f"{len(report.tasks) - passed} of {len(report.tasks)} sealed task(s) fail")
+        print(f"{n - passed} of {n} sealed task(s) fail")
     return 0 if report.passed else 1
 
 
@@ -227,6 +238,144 @@ def _unseal(args: argparse.Namespace) -> int:
     step = unseal_workspace(args.workspace, args.task, args.reason)
     print(f"unsealed task {step['task']!r} (seal v{step['version']}) at {step['time']}; "
           f"reason recorded: {step['reason']}")
+    return 0
+
+
+def _export(args: argparse.Namespace) -> int:
+    from .export import export_task
+
+    r = export_task(args.workspace, args.task, args.output)
+    seal = f"seal v{r['seal']['version']}" if r["seal"] else "not sealed"
+    print(f"exported task {r['task']!r} to {r['output']} ({r['format']}, {r['bytes']:,} bytes): "
+          f"columns {','.join(map(str, r['columns']))}, {r['adapters']} adapters, "
+          f"{r['parameters']:,} values in {r['tensors']} tensors; closure SHA-256 "
+          f"{r['closure_sha256'][:16]}..., {seal}")
+    return 0
+
+
+def _bytes(n: float | None) -> str:
+    from .hardware import format_bytes
+
+    return "-" if n is None else format_bytes(n)
+
+
+def _latency_cell(lat: dict[str, Any] | None) -> str:
+    if not lat:
+        return "-"
+    return f"{lat['median']:.3f} ({lat['q1']:.3f}-{lat['q3']:.3f})"
+
+
+def _print_costs(led: dict[str, Any]) -> None:
+    rows = []
+    for t in led["tasks"] + [dict(led["total"], task="whole network, one pass", mode="all",
+                                  params_added=led["total"]["params"],
+                                  params_path=led["total"]["params"],
+                                  params=led["total"]["params_by_part"])]:
+        p = t["params"]
+        rows.append([t["task"], t["mode"], t["params_added"], t["params_path"], p["column"],
+                     p["adapters"], p["head"], p["frozen"], p["trainable"],
+                     t["buffers"]["elements"]])
+    print(table(rows, ["task", "mode", "params added", "params on path", "column", "adapters",
+                       "head", "frozen", "trainable", "buffers"]))
+    print()
+    rows = [[t["task"], t["macs"], _bytes(t["weight_bytes"]["fp32"]),
+             _bytes(t["weight_bytes"]["fp16"]), _bytes(t["weight_bytes"]["int8"]),
+             _bytes(t["activation_bytes"]), _latency_cell(t["latency_ms"]["batch_1"]),
+             _latency_cell(t["latency_ms"]["batch_64"])]
+            for t in led["tasks"] + [dict(led["total"], task="whole network, one pass")]]
+    print(table(rows, ["task", "MACs", "weights fp32", "fp16/bf16", "int8",
+                       "peak activations", "latency b1 ms (IQR)", "b64 ms (IQR)"]))
+    print(f"one pass over all tasks: {led['total']['macs']:,} MACs; each task run alone: "
+          f"{led['total']['macs_separate']:,} MACs in all")
+
+
+def _print_projection(proj: dict[str, Any]) -> None:
+    print(f"projection: {proj['rule']['text']}")
+    print()
+    print(table([[p["task"], p["column"], f"{p['width']:g}", p["params_added"], p["params_path"],
+                  p["macs"], p["network_params"], _bytes(p["network_weight_bytes"]["fp32"]),
+                  _bytes(p["activation_bytes"])] for p in proj["tasks"]],
+                ["future task", "column", "width", "params added", "params on path",
+                 "MACs on path", "network params", "network fp32", "peak activations"]))
+
+
+def _over_text(v: dict[str, Any]) -> str:
+    if v["fits"]:
+        return "fits"
+    parts = []
+    for k, o in v["over"].items():
+        extra = o["need"] - o["budget"]
+        by = f"{extra:.3g} ms" if k == "latency" else _bytes(extra)
+        parts.append(f"{k.replace('_', ' ')} by {by} (+{o['ratio'] - 1:.0%})")
+    return "exceeds " + ", ".join(parts)
+
+
+def _print_hardware(hw: dict[str, Any], projected: bool) -> None:
+    from .hardware import format_rate
+
+    prof = hw["profile"]
+    print(f"device {prof['name']}: weights {_bytes(prof['weight_memory_bytes'])}, activations "
+          f"{_bytes(prof['activation_memory_bytes'])}, {format_rate(prof['mac_rate_per_s'])}, "
+          f"latency budget {prof['latency_budget_ms']:g} ms, dtype {prof['dtype']}")
+    print(f"rule: {hw['rule']}")
+    print()
+    print(table([[v["task"], "yes" if v["future"] else "no", _bytes(v["need"]["weight_bytes"]),
+                  _bytes(v["need"]["activation_bytes"]), round(v["need"]["latency_ms"], 4),
+                  _over_text(v)] for v in hw["verdicts"]],
+                ["task", "projected", "weights", "activations", "latency ms (est.)",
+                 "verdict"]))
+    if hw["already_exceeded"]:
+        print(f"already over budget at task {hw['already_exceeded']!r}")
+    if hw["first_break"]:
+        print(f"first future task over budget: {hw['first_break']}")
+    elif projected:
+        print("every projected task fits")
+    else:
+        print("project future tasks with --project N to find the first one over budget")
+    if hw["options"]:
+        print()
+        print("options, each re-projecting the same future tasks:")
+        print(table([[o["name"], o["status"], o["first_break"] or "none, all fit",
+                      _bytes((o["last"] or {}).get("weight_bytes")),
+                      round((o["last"] or {}).get("latency_ms", 0.0), 4), o["note"]]
+                     for o in hw["options"]],
+                    ["option", "status", "first over budget", "weights at last",
+                     "latency ms at last", "note"]))
+
+
+def _cost(args: argparse.Namespace) -> int:
+    from .ledger import cost_workspace
+
+    led = cost_workspace(args.workspace, project_n=args.project or 0, width=args.width,
+                         hardware=args.hardware, classes=args.classes,
+                         latency=not args.no_latency, repeats=args.repeats)
+    if args.json:
+        _print_json(led)
+        return 0
+    print(f"workspace {led['workspace']}: spec {led['spec']!r}, lateral {led['lateral']}; "
+          f"costs per inference at batch 1")
+    print(f"{led['conventions']['macs']}")
+    if not led["tasks"]:
+        print("no tasks yet; grow one with 'colonnade grow WS --task NAME --train FILE'")
+    else:
+        print()
+        _print_costs(led)
+    if "projection" in led:
+        print()
+        _print_projection(led["projection"])
+    if "hardware" in led:
+        print()
+        _print_hardware(led["hardware"], "projection" in led)
+    return 0
+
+
+def _report(args: argparse.Namespace) -> int:
+    from .report import write_report
+
+    result = write_report(args.workspace, args.output, hardware=args.hardware,
+                          project_n=args.project, latency=not args.no_latency,
+                          repeats=args.repeats)
+    print(f"wrote {', '.join(result['files'])} to {result['output']}")
     return 0
 
 
@@ -265,6 +414,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--epochs", type=_positive_int, help="override the spec's epochs")
     p.add_argument("--device", default="cpu", help="cpu (default) or cuda")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.add_argument("--cache-mb", type=_non_negative_float,
+                   help="memory cap (MiB) for cached frozen-column outputs; beyond it they "
+                        "spill to a temporary file (default: the spec's train.cache_mb)")
+    p.add_argument("--no-cache", action="store_true",
+                   help="recompute frozen columns every batch instead of caching them")
 
     p = verb("show", _show, "print tasks, columns, heads, adapters and parameter counts")
     p.add_argument("workspace")
@@ -272,7 +426,9 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = verb("predict", _predict, "write a task's logits and predictions for a data file")
     p.add_argument("workspace")
-    p.add_argument("--task", required=True)
+    p.add_argument("--task", help="the task (or --all)")
+    p.add_argument("--all", action="store_true",
+                   help="every task in one pass, each column computed once per batch")
     p.add_argument("--data", required=True, help=".npz or .csv; labels optional")
     p.add_argument("-o", "--output", required=True, help="output .npz")
     p = verb("seal", _seal, "seal a task: record digests of its closure and its outputs on a "
@@ -295,6 +451,42 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("workspace")
     p.add_argument("--task", required=True)
     p.add_argument("--reason", required=True, help="why the certificate is lifted")
+    p = verb("export", _export, "write one task alone (its closure only) as a torch .pt "
+                                "or an ONNX file")
+    p.add_argument("workspace")
+    p.add_argument("--task", required=True)
+    p.add_argument("-o", "--output", required=True,
+                   help="FILE.pt (loads with torch.load(weights_only=True) and "
+                        "colonnade/standalone.py) or FILE.onnx")
+    p = verb("cost", _cost, "what each task costs (parameters, bytes, MACs, activation "
+                            "memory, latency), projected growth and a device verdict")
+    p.add_argument("workspace")
+    p.add_argument("--json", action="store_true", help="print the ledger as JSON")
+    p.add_argument("--project", type=_positive_int, metavar="N",
+                   help="also project N future tasks grown by the spec's rule")
+    p.add_argument("--width", type=_positive_float, metavar="F",
+                   help="with --project: the width factor of future columns (default: the "
+                        "newest column's)")
+    p.add_argument("--classes", type=_class_count, metavar="N",
+                   help="with --project: classes of each future task (default: the newest "
+                        "task's)")
+    p.add_argument("--hardware", metavar="PROFILE",
+                   help="a hardware profile YAML, or a name in specs/hardware/")
+    p.add_argument("--repeats", type=_positive_int, default=20,
+                   help="timed calls per latency figure (default 20)")
+    p.add_argument("--no-latency", action="store_true", help="skip the latency measurement")
+
+    p = verb("report", _report, "write report.md, a self-contained report.html and "
+                                "report.json with plots")
+    p.add_argument("workspace")
+    p.add_argument("-o", "--output", required=True, help="folder for the report files")
+    p.add_argument("--hardware", metavar="PROFILE",
+                   help="a hardware profile YAML, or a name in specs/hardware/")
+    p.add_argument("--project", type=_positive_int, default=10, metavar="N",
+                   help="future tasks to project (default 10)")
+    p.add_argument("--repeats", type=_positive_int, default=20,
+                   help="timed calls per latency figure (default 20)")
+    p.add_argument("--no-latency", action="store_true", help="skip the latency measurement")
     return parser
 
 

@@ -61,6 +61,11 @@ class AdapterInfo:
     extra: dict[str, Any] = field(default_factory=dict)
 
     @property
+    def sources(self) -> tuple[int, ...]:
+        """The columns it reads: ``source``, or for a joint adapter ``extra['sources']``."""
+        return tuple(int(s) for s in self.extra.get("sources", (self.source,)))
+
+    @property
     def target(self) -> str:
         if self.head is not None:
             return f"head {self.head}"
@@ -142,6 +147,7 @@ class ProgressiveNet(nn.Module):
         self._trainable: set[str] = set()
         self._into: dict[tuple[int, int], list[tuple[str, int]]] = {}
         self._into_head: dict[str, list[tuple[str, int]]] = {}
+        self._sources: dict[str, tuple[int, ...]] = {}  # live adapter -> columns it reads
 
     # ----------------------------------------------------------------- inspection
     @property
@@ -168,23 +174,39 @@ class ProgressiveNet(nn.Module):
     def adapters_into_head(self, task: str) -> list[tuple[str, int]]:
         return list(self._into_head.get(task, []))
 
+    def adapter_sources(self, key: str) -> tuple[int, ...]:
+        """The columns a live adapter reads: one, or several for a joint adapter."""
+        return self._sources[key]
+
+    def lateral_geometry(self, sources: tuple[int, ...], column: int | None = None,
+                         block: int | None = None, head: str | None = None,
+                         ) -> tuple[list[Shape], Shape, Any]:
+        """Source shapes, target shape and target layer spec of a lateral connection."""
+        if head is not None:
+            classes = self.task_info[head].classes
+            return ([self.columns[j].plan.out_shape for j in sources], (classes,),
+                    Dense(dense=classes))
+        dst = self.columns[column].plan.blocks[block]
+        return ([self.columns[j].plan.blocks[block - 1].out_shape for j in sources],
+                dst.pre_shape, dst.weighted)
+
     def closure(self, task: str) -> Closure:
         """Columns and adapters reachable from the task's head through live adapters."""
         info = self.task(task)
         adapters: list[str] = []
         columns = {info.column}
-        for key, source in self._into_head.get(task, []):
+        for key, _ in self._into_head.get(task, []):
             adapters.append(key)
-            columns.add(source)
+            columns.update(self._sources[key])
         # Sources always sit to the left of their targets, so one right-to-left pass
         # over columns collects every transitive dependency.
         for k in range(info.column, -1, -1):
             if k not in columns:
                 continue
             for b in range(len(self.columns[k].blocks)):
-                for key, source in self._into.get((k, b), []):
+                for key, _ in self._into.get((k, b), []):
                     adapters.append(key)
-                    columns.add(source)
+                    columns.update(self._sources[key])
         return Closure(task, tuple(sorted(columns)), tuple(sorted(adapters)), task)
 
     def closure_state(self, task: str) -> dict[str, torch.Tensor]:
@@ -241,8 +263,8 @@ class ProgressiveNet(nn.Module):
             hs: list[torch.Tensor] = []
             for b, block in enumerate(col.blocks):
                 z = block.weighted(h)
-                for key, source in self._into.get((k, b), []):
-                    z = z + self.adapters[key](outs[source][b - 1])
+                for key, _ in self._into.get((k, b), []):
+                    z = z + self._lateral(key, outs, b - 1)
                 h = block.post(z)
                 hs.append(h)
             outs[k] = hs
@@ -251,18 +273,32 @@ class ProgressiveNet(nn.Module):
     def head_logits(self, task: str, outs: dict[int, list[torch.Tensor]]) -> torch.Tensor:
         info = self.task_info[task]
         logits = self.heads[task](outs[info.column][-1])
-        for key, source in self._into_head.get(task, []):
-            logits = logits + self.adapters[key](outs[source][-1])
+        for key, _ in self._into_head.get(task, []):
+            logits = logits + self._lateral(key, outs, -1)
         return logits
 
-    def forward(self, x: torch.Tensor, task: str | None = None) -> torch.Tensor:
+    def _lateral(self, key: str, outs: dict[int, list[torch.Tensor]], index: int,
+                 ) -> torch.Tensor:
+        """One adapter's output; a joint adapter reads its sources concatenated."""
+        sources = self._sources[key]
+        if len(sources) == 1:
+            return self.adapters[key](outs[sources[0]][index])
+        return self.adapters[key](torch.cat([outs[s][index] for s in sources], dim=1))
+
+    def forward(self, x: torch.Tensor, task: str | None = None,
+                given: dict[int, list[torch.Tensor]] | None = None) -> torch.Tensor:
+        """The task's logits; ``given`` passes known block outputs on to ``run_columns``.
+
+        Training reuses cached outputs of frozen columns through ``given`` (cache.py), in
+        this same call, so wrappers such as DistributedDataParallel still see one forward.
+        """
         if task is None:
             if len(self.task_info) != 1:
                 raise UsageError("this network has several tasks; pass task=NAME")
             task = self.tasks[0]
         self.task(task)
         self._check_input(x)
-        outs = self.run_columns(x, self.closure(task).columns)
+        outs = self.run_columns(x, self.closure(task).columns, given)
         return self.head_logits(task, outs)
 
     def forward_all(self, x: torch.Tensor) -> dict[str, torch.Tensor]:
@@ -291,7 +327,14 @@ class ProgressiveNet(nn.Module):
         self.train(False)
 
     def _make_trainable(self, parts: list[str]) -> None:
-        """The one place parts become trainable; everything else is frozen."""
+        """The one place parts become trainable; everything else is frozen.
+
+        Parts inside a sealed task's closure are refused (SealedError naming the seal)
+        before anything changes.
+        """
+        from .seal import guard
+
+        guard(self, parts, "train")
         modules = dict(self.part_modules())
         self.freeze()
         for part in parts:
@@ -317,9 +360,11 @@ class ProgressiveNet(nn.Module):
     def _reindex(self) -> None:
         into: dict[tuple[int, int], list[tuple[str, int]]] = {}
         into_head: dict[str, list[tuple[str, int]]] = {}
+        sources: dict[str, tuple[int, ...]] = {}
         for key, info in self.adapter_info.items():
             if info.state != "live" or key not in self.adapters:
                 continue
+            sources[key] = info.sources
             if info.head is not None:
                 into_head.setdefault(info.head, []).append((key, info.source))
             else:
@@ -327,7 +372,7 @@ class ProgressiveNet(nn.Module):
         for targets in (into, into_head):
             for lst in targets.values():
                 lst.sort(key=lambda item: (item[1], item[0]))
-        self._into, self._into_head = into, into_head
+        self._into, self._into_head, self._sources = into, into_head, sources
 
     def _block_adapter(self, k: int, b: int, j: int, kind: str | None = None,
                        ) -> tuple[AdapterInfo, LateralAdapter]:
@@ -404,6 +449,9 @@ class ProgressiveNet(nn.Module):
         """Undo the newest growth step (used to roll back a failed grow)."""
         if not self.tasks or self.tasks[-1] != name:
             raise UsageError(f"only the newest task can be removed, not {name!r}")
+        from .seal import guard
+
+        guard(self, [f"head:{name}"], "remove")
         info = self.task_info.pop(name)
         del self.heads[name]
         for key in [k for k, a in self.adapter_info.items()
@@ -418,6 +466,14 @@ class ProgressiveNet(nn.Module):
         self.freeze()
 
     # ----------------------------------------------------------------- persistence
+    def load_state_dict(self, state_dict: Any, strict: bool = True, assign: bool = False,
+                        ) -> Any:
+        """As ``nn.Module.load_state_dict``, but refuses to change a sealed closure."""
+        from .seal import guard_state
+
+        guard_state(self, state_dict)
+        return super().load_state_dict(state_dict, strict=strict, assign=assign)
+
     def architecture(self) -> dict[str, Any]:
         """Everything needed to rebuild the modules, as plain data for the manifest."""
         return {

@@ -130,10 +130,13 @@ def _tensor_files(net: ProgressiveNet) -> dict[str, bytes]:
 
 def save(net: ProgressiveNet, folder: str | Path) -> None:
     """Write the whole network and its records to a workspace folder, atomically."""
+    from .seal import verify_unchanged
+
     folder = Path(folder)
     if not folder.is_dir():
         raise WorkspaceError(f"{folder}: no such workspace folder; create one with "
                              f"'colonnade new SPEC -o {folder}'")
+    verify_unchanged(net)  # a sealed closure that moved is never written
     files = _tensor_files(net)
     manifest: dict[str, Any] = {
         "format": FORMAT,

@@ -15,7 +15,7 @@ import torch
 
 from .data import load_task_data
 from .errors import UsageError
-from .fit import EVAL_BATCH, task_logits
+from .fit import EVAL_BATCH, all_task_logits, task_logits
 from .growth import grow
 from .network import ProgressiveNet
 from .store import atomic_write, create, load, save
@@ -30,7 +30,9 @@ def new_workspace(spec_path: str | Path, folder: str | Path) -> ProgressiveNet:
 def grow_workspace(folder: str | Path, task: str, train: str | Path, val: str | Path | None = None,
                    mode: str = "column", on: str | None = None, width: float = 1.0,
                    classes: int | None = None, epochs: int | None = None,
-                   device: str | None = None, progress: bool = True) -> dict[str, Any]:
+                   device: str | None = None, progress: bool = True, cache: bool | None = None,
+                   cache_mb: float | None = None, target: float | None = None,
+                   ) -> dict[str, Any]:
     """Grow one task in a workspace from data files; returns the history entry."""
     net = load(folder)
     if task in net.task_info:
@@ -44,7 +46,7 @@ def grow_workspace(folder: str | Path, task: str, train: str | Path, val: str | 
     data = load_task_data(train, net.input_shape, classes=classes, val_path=val,
                           val_fraction=net.spec.train.val_fraction, seed=net.spec.train.seed)
     entry = grow(net, task, data, mode=mode, on=on, width=width, epochs=epochs, device=device,
-                 progress=progress)
+                 progress=progress, cache=cache, cache_mb=cache_mb, target=target)
     save(net, folder)
     return entry
 
@@ -64,7 +66,11 @@ def parameter_counts(net: ProgressiveNet) -> dict[str, int]:
 
 def describe(folder: str | Path) -> dict[str, Any]:
     """What ``show`` prints: tasks, columns, heads, adapters and parameter counts."""
+    from .seal import sealed_tasks
+    from .transfer import record as transfer_record
+
     net = load(folder)
+    sealed = sealed_tasks(net)
     tasks = []
     for name, info in net.task_info.items():
         record = net.meta["records"].get(name, {})
@@ -78,6 +84,7 @@ def describe(folder: str | Path) -> dict[str, Any]:
             "task": name, "mode": info.mode, "column": info.column, "classes": info.classes,
             "val_accuracy": record.get("val_accuracy"),
             "closure_columns": list(closure.columns), "params_path": path_params,
+            "seal": sealed[name]["version"] if name in sealed else None,
         })
     columns = [{"column": c.index, "task": c.task, "width": c.width,
                 "params": sum(p.numel() for p in net.columns[c.index].parameters())}
@@ -96,19 +103,47 @@ def describe(folder: str | Path) -> dict[str, Any]:
         "columns": columns,
         "adapters": adapters,
         "parameters": parameter_counts(net),
+        "seals": {t: {"version": e.get("version"), "time": e.get("time"),
+                      "closure_sha256": (e.get("closure") or {}).get("sha256"),
+                      "probe_accuracy": (e.get("metrics") or {}).get("accuracy")}
+                  for t, e in sealed.items()},
+        "transfer": transfer_record(net, sealed),
         "history": net.meta["history"],
     }
 
 
-def predict_file(folder: str | Path, task: str, data: str | Path, out: str | Path,
-                 ) -> dict[str, Any]:
-    """Write ``logits`` and ``pred`` of ``task`` on a data file to an .npz, atomically."""
+def predict_file(folder: str | Path, task: str | None, data: str | Path, out: str | Path,
+                 all_tasks: bool = False) -> dict[str, Any]:
+    """Write a task's logits and predictions on a data file to an .npz, atomically.
+
+    One task: arrays ``logits`` and ``pred``. ``all_tasks``: one pass of ``forward_all``
+    (each column once per batch) and, for every task, ``logits_<task>`` and
+    ``pred_<task>``, plus ``tasks``, the task names in growth order.
+    """
+    if all_tasks == (task is not None):
+        raise UsageError("name one task with --task NAME, or pass --all for every task")
     out = Path(out)
     if out.suffix.lower() != ".npz":
         raise UsageError(f"{out}: the output must be an .npz file")
     if not out.parent.is_dir():
         raise UsageError(f"{out.parent}: no such folder for the output")
     net = load(folder)
+    if all_tasks:
+        if not net.tasks:
+            raise UsageError(f"{folder} has no task yet; grow one before predicting")
+        # Labels, if any, are ignored here; checked only against the largest class count.
+        most = max(info.classes for info in net.task_info.values())
+        loaded = load_task_data(data, net.input_shape, classes=most, need_labels=False,
+                                split=False)
+        every = all_task_logits(net, loaded.x, EVAL_BATCH)
+        arrays: dict[str, np.ndarray] = {"tasks": np.array(net.tasks)}
+        for name, logits in every.items():
+            arrays[f"logits_{name}"] = logits.numpy()
+            arrays[f"pred_{name}"] = logits.argmax(1).numpy()
+        buf = io.BytesIO()
+        np.savez(buf, **arrays)
+        atomic_write(out, buf.getvalue())
+        return {"tasks": net.tasks, "samples": int(loaded.x.shape[0]), "output": str(out)}
     info = net.task(task)
     loaded = load_task_data(data, net.input_shape, classes=info.classes, need_labels=False,
                             split=False)

@@ -1,0 +1,189 @@
+"""Figures for the report, drawn with matplotlib's Agg backend (no display needed).
+
+Each function takes the plain data of the ledger and returns PNG bytes, so the report
+can write them as files and inline them as base64 alike. Colours are from the Okabe &
+Ito 2008 palette (readable for colour-blind readers); projected tasks are drawn hatched
+and lighter so they never pass for measured ones.
+"""
+
+from __future__ import annotations
+
+import io
+import math
+from collections.abc import Sequence
+from typing import Any
+
+import matplotlib
+
+matplotlib.use("Agg")
+import matplotlib.pyplot as plt  # noqa: E402
+from matplotlib.ticker import (  # noqa: E402
+    EngFormatter,
+    FuncFormatter,
+    MaxNLocator,
+    MultipleLocator,
+)
+
+__all__ = ["params_per_task", "macs_per_task", "projected_growth", "accuracy_heatmap",
+           "PART_COLOURS"]
+
+PART_COLOURS = {"column": "#0072B2", "adapters": "#E69F00", "head": "#009E73"}
+BUDGET = "#D55E00"
+_STYLE = {
+    "figure.dpi": 110, "savefig.dpi": 110, "font.size": 9, "axes.titlesize": 11,
+    "axes.titleweight": "bold", "axes.labelsize": 9, "axes.spines.top": False,
+    "axes.spines.right": False, "axes.grid": True, "axes.grid.axis": "y", "grid.alpha": 0.3,
+    "legend.frameon": False, "legend.fontsize": 8, "font.family": "DejaVu Sans",
+}
+
+
+def _png(fig: Any) -> bytes:
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", bbox_inches="tight", metadata={"Software": None})
+    plt.close(fig)
+    return buf.getvalue()
+
+
+def _bytes_axis(ax: Any, top: float) -> str:
+    """Ticks at round multiples of one binary unit; returns the unit for the label."""
+    unit, name = 1, "B"
+    for size, label in ((2**30, "GiB"), (2**20, "MiB"), (2**10, "KiB")):
+        if top >= 2 * size:
+            unit, name = size, label
+            break
+    raw = top / unit / 5 if top > 0 else 1
+    step = next(m * 10 ** math.floor(math.log10(raw)) for m in (1, 2, 2.5, 5, 10)
+                if m * 10 ** math.floor(math.log10(raw)) >= raw)
+    ax.yaxis.set_major_locator(MultipleLocator(step * unit))
+    ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v / unit:g}"))
+    return name
+
+
+def _labels(ax: Any, names: Sequence[str]) -> None:
+    ax.set_xticks(range(len(names)))
+    rotate = len(names) > 4 or max((len(n) for n in names), default=0) > 10
+    ax.set_xticklabels(names, rotation=35 if rotate else 0, ha="right" if rotate else "center")
+
+
+def _stacked(ax: Any, names: list[str], parts: list[dict[str, int]], future: list[bool]) -> None:
+    bottom = [0] * len(names)
+    for part, colour in PART_COLOURS.items():
+        values = [p.get(part, 0) for p in parts]
+        for i, v in enumerate(values):
+            ax.bar(i, v, bottom=bottom[i], color=colour, alpha=0.45 if future[i] else 1.0,
+                   hatch="//" if future[i] else None, edgecolor="white", linewidth=0.6,
+                   label=part if i == 0 else None)
+        bottom = [b + v for b, v in zip(bottom, values, strict=True)]
+    _labels(ax, names)
+
+
+def params_per_task(tasks: list[dict[str, Any]], projected: list[dict[str, Any]]) -> bytes:
+    """Parameters each task added, stacked by part; projected tasks hatched."""
+    with plt.rc_context(_STYLE):
+        fig, ax = plt.subplots(figsize=(7.5, 3.6))
+        names = [t["task"] for t in tasks] + [p["task"] for p in projected]
+        parts = [t["params_added_by_part"] for t in tasks] + [
+            p["params_added_by_part"] for p in projected]
+        future = [False] * len(tasks) + [True] * len(projected)
+        _stacked(ax, names, parts, future)
+        ax.yaxis.set_major_formatter(EngFormatter(sep=" "))
+        ax.set_ylabel("parameters added (count)")
+        ax.set_xlabel("task, in growth order" + (" (hatched: projected)" if projected else ""))
+        ax.set_title("Parameters each task brings, by part")
+        ax.legend(loc="upper left")
+        return _png(fig)
+
+
+def macs_per_task(tasks: list[dict[str, Any]], projected: list[dict[str, Any]]) -> bytes:
+    """MACs of each task's inference path at batch 1, stacked by part."""
+    with plt.rc_context(_STYLE):
+        fig, ax = plt.subplots(figsize=(7.5, 3.6))
+        names = [t["task"] for t in tasks] + [p["task"] for p in projected]
+        parts = [t["macs_by_part"] for t in tasks] + [p["macs_by_part"] for p in projected]
+        future = [False] * len(tasks) + [True] * len(projected)
+        _stacked(ax, names, parts, future)
+        ax.yaxis.set_major_formatter(EngFormatter(sep=" "))
+        ax.set_ylabel("MACs per inference (batch 1)")
+        ax.set_xlabel("task, in growth order" + (" (hatched: projected)" if projected else ""))
+        ax.set_title("Compute on each task's path (FLOPs = 2 x MACs)")
+        ax.legend(loc="upper left")
+        return _png(fig)
+
+
+def projected_growth(series: dict[str, Any]) -> bytes:
+    """Weight memory, activation memory and latency per task against the budget lines.
+
+    ``series`` holds ``labels`` (task names), ``future`` (bools), ``weight``,
+    ``activation`` (bytes), ``latency`` (ms, or None), ``dtype``, ``budgets`` (or None:
+    no device) and ``breaks`` (index of the first task over budget, or None).
+    """
+    labels, future = series["labels"], series["future"]
+    panels = [("weight", "weight memory", True), ("activation", "activation memory (peak)",
+                                                    True)]
+    if series.get("latency") is not None:
+        panels.append(("latency", "latency estimate", False))
+    with plt.rc_context(_STYLE):
+        fig, axes = plt.subplots(1, len(panels), figsize=(4.0 * len(panels), 3.4))
+        x = list(range(1, len(labels) + 1))
+        n_now = future.count(False)
+        for ax, (key, title, is_bytes) in zip(axes, panels, strict=True):
+            values = series[key]
+            if n_now:
+                ax.plot(x[:n_now], values[:n_now], "o-", color="#0072B2", label="grown")
+            if len(x) > n_now:
+                start = max(n_now - 1, 0)
+                ax.plot(x[start:], values[start:], "o--", color="#56B4E9",
+                        markerfacecolor="white", label="projected")
+            budgets = series.get("budgets")
+            top = max(values, default=0)
+            if budgets:
+                limit = budgets[{"weight": "weight_memory", "activation": "activation_memory",
+                                 "latency": "latency"}[key]]
+                ax.axhline(limit, color=BUDGET, linewidth=1.4, label="device budget")
+                top = max(top, limit)
+            ax.set_ylim(0, (top or 1) * 1.15)
+            brk = series.get("breaks")
+            if brk is not None:
+                ax.axvline(brk + 1, color="#777777", linestyle=":", linewidth=1,
+                           label="first over budget")
+            unit = _bytes_axis(ax, (top or 1) * 1.15) if is_bytes else "ms"
+            ax.xaxis.set_major_locator(MaxNLocator(integer=True))
+            ax.set_xlabel("tasks grown (count)")
+            what = title.split(" (")[0]
+            ax.set_ylabel(f"{what} ({unit})" + (f" at {series['dtype']}" if is_bytes else ""))
+            ax.set_title(title[0].upper() + title[1:], fontsize=10)
+        axes[0].legend(loc="upper left")
+        device = series.get("device")
+        fig.suptitle("Growth against " + (f"the budget of {device}" if device
+                                           else "the task count (no device profile)"),
+                     fontsize=11, fontweight="bold", y=1.02)
+        fig.tight_layout()
+        return _png(fig)
+
+
+def accuracy_heatmap(tasks: list[str], R: list[list[float | None]]) -> bytes:
+    """The accuracy matrix R[i][j]: accuracy on task j after growing task i."""
+    n = len(tasks)
+    with plt.rc_context({**_STYLE, "axes.grid": False}):
+        size = max(3.2, 0.7 * n + 1.8)
+        fig, ax = plt.subplots(figsize=(size + 1.0, size))
+        data = [[math.nan if v is None else float(v) for v in row] for row in R]
+        cmap = plt.get_cmap("viridis").copy()
+        cmap.set_bad("#eeeeee")
+        im = ax.imshow(data, cmap=cmap, vmin=0.0, vmax=1.0)
+        for i in range(n):
+            for j in range(n):
+                v = data[i][j]
+                text = "-" if math.isnan(v) else f"{v:.3f}"
+                ax.text(j, i, text, ha="center", va="center", fontsize=8,
+                        color="black" if math.isnan(v) or v > 0.6 else "white")
+        ax.set_xticks(range(n))
+        ax.set_yticks(range(n))
+        ax.set_xticklabels(tasks, rotation=35, ha="right")
+        ax.set_yticklabels(tasks)
+        ax.set_xlabel("evaluated on task")
+        ax.set_ylabel("after growing task")
+        ax.set_title("Accuracy matrix R (validation)")
+        bar = fig.colorbar(im, ax=ax, fraction=0.046, pad=0.04)
+        bar.set_label("accuracy (fraction correct)")
+        return _png(fig)

@@ -1,0 +1,143 @@
+"""Run one exported task with torch alone: the loader of ``colonnade export`` .pt files.
+
+This file imports only torch and the standard library, never the rest of colonnade, so
+it can be copied next to a service that has nothing but torch installed::
+
+    from standalone import load_task
+    model, meta = load_task("pump_a_faults.pt")   # torch.load(..., weights_only=True)
+    logits = model(x)                               # x: (N, *meta["input_shape"])
+
+The file is a plain dictionary written by ``torch.save``: ``format``, ``version``,
+``task``, ``classes``, ``input_shape``, ``architecture`` (plain data naming torch layers
+and their arguments, the column order and each lateral adapter's target), ``state``
+(tensors by the grown network's own ``state_dict`` keys, only those of the task's
+closure) and ``meta`` (closure digest, seal, versions). ``weights_only=True`` loading
+accepts exactly such dictionaries and runs no code. The forward below repeats the grown
+network's operations in the same order, so the logits are bit-identical on the same
+device, dtype, thread count and batch.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+import torch
+import torch.nn as nn
+
+__all__ = ["FORMAT", "VERSION", "LAYERS", "build_layer", "TaskModel", "load_task"]
+
+FORMAT = "colonnade-task"
+VERSION = 1
+
+# The torch layers an exported architecture may name; nothing else can be built.
+LAYERS: dict[str, type[nn.Module]] = {cls.__name__: cls for cls in (
+    nn.Linear, nn.Conv1d, nn.Conv2d, nn.BatchNorm1d, nn.BatchNorm2d, nn.LayerNorm,
+    nn.GroupNorm, nn.ReLU, nn.GELU, nn.Tanh, nn.Sigmoid, nn.LeakyReLU, nn.Dropout,
+    nn.MaxPool1d, nn.MaxPool2d, nn.AvgPool1d, nn.AvgPool2d, nn.AdaptiveAvgPool1d,
+    nn.AdaptiveAvgPool2d, nn.Flatten, nn.Identity)}
+
+
+def build_layer(desc: dict[str, Any]) -> nn.Module:
+    """A torch layer from ``{"type": NAME, "args": {...}}`` or a ``Sequential`` of them."""
+    kind = desc["type"]
+    if kind == "Sequential":
+        return nn.Sequential(*(build_layer(d) for d in desc["layers"]))
+    if kind not in LAYERS:
+        raise ValueError(f"unknown layer type {kind!r} in the exported architecture")
+    args = {k: tuple(v) if isinstance(v, list) else v for k, v in desc.get("args", {}).items()}
+    return LAYERS[kind](**args)
+
+
+class _Steps(nn.Module):
+    """A lateral adapter as ordered steps: multiply by a named scalar, or apply a layer."""
+
+    def __init__(self, steps: list[dict[str, Any]]) -> None:
+        super().__init__()
+        self.order: list[tuple[str, str]] = []
+        for step in steps:
+            name = step["name"]
+            if step["op"] == "scale":
+                self.register_parameter(name, nn.Parameter(torch.empty(step["shape"])))
+            elif step["op"] == "module":
+                self.add_module(name, build_layer(step["layer"]))
+            else:
+                raise ValueError(f"unknown adapter step {step['op']!r}")
+            self.order.append((step["op"], name))
+
+    def forward(self, h: torch.Tensor) -> torch.Tensor:
+        for op, name in self.order:
+            h = getattr(self, name) * h if op == "scale" else getattr(self, name)(h)
+        return h
+
+
+class _Block(nn.Module):
+    def __init__(self, desc: dict[str, Any]) -> None:
+        super().__init__()
+        self.weighted = build_layer(desc["weighted"])
+        self.post = nn.Sequential(*(build_layer(d) for d in desc["post"]))
+
+
+class _Column(nn.Module):
+    def __init__(self, desc: dict[str, Any]) -> None:
+        super().__init__()
+        self.stem = nn.Sequential(*(build_layer(d) for d in desc["stem"]))
+        self.blocks = nn.ModuleList(_Block(b) for b in desc["blocks"])
+
+
+class TaskModel(nn.Module):
+    """One task's closure: its columns, the live adapters between them, its head."""
+
+    def __init__(self, architecture: dict[str, Any]) -> None:
+        super().__init__()
+        self.task = architecture["task"]
+        self.order = [int(c["index"]) for c in architecture["columns"]]
+        self.head_column = int(architecture["head_column"])
+        self.columns = nn.ModuleDict({str(c["index"]): _Column(c)
+                                      for c in architecture["columns"]})
+        self.adapters = nn.ModuleDict()
+        self.into: dict[tuple[int, int], list[tuple[str, int]]] = {}
+        self.into_head: list[tuple[str, int]] = []
+        for a in architecture["adapters"]:  # in the order the grown network adds them
+            self.adapters[a["key"]] = _Steps(a["steps"])
+            if a["head"] is not None:
+                self.into_head.append((a["key"], int(a["source"])))
+            else:
+                self.into.setdefault((int(a["column"]), int(a["block"])), []).append(
+                    (a["key"], int(a["source"])))
+        self.heads = nn.ModuleDict({self.task: build_layer(architecture["head"])})
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        outs: dict[int, list[torch.Tensor]] = {}
+        for k in self.order:
+            col = self.columns[str(k)]
+            h = col.stem(x)
+            hs: list[torch.Tensor] = []
+            for b, block in enumerate(col.blocks):
+                z = block.weighted(h)
+                for key, source in self.into.get((k, b), []):
+                    z = z + self.adapters[key](outs[source][b - 1])
+                h = block.post(z)
+                hs.append(h)
+            outs[k] = hs
+        logits = self.heads[self.task](outs[self.head_column][-1])
+        for key, source in self.into_head:
+            logits = logits + self.adapters[key](outs[source][-1])
+        return logits
+
+
+def load_task(path: str | Path, map_location: str | torch.device = "cpu",
+              ) -> tuple[TaskModel, dict[str, Any]]:
+    """The exported task as an eval-mode module, and the file's metadata."""
+    blob = torch.load(path, map_location=map_location, weights_only=True)
+    if not isinstance(blob, dict) or blob.get("format") != FORMAT:
+        raise ValueError(f"{path}: not an exported colonnade task")
+    if blob.get("version") != VERSION:
+        raise ValueError(f"{path}: format version {blob.get('version')} is not {VERSION}")
+    model = TaskModel(blob["architecture"])
+    model.load_state_dict(blob["state"], strict=True)
+    model.requires_grad_(False)
+    model.eval()
+    meta = {k: blob[k] for k in ("task", "classes", "input_shape")}
+    meta.update(blob.get("meta") or {})
+    return model, meta

@@ -1,0 +1,377 @@
+"""Usage scores: how much each lateral adapter feeding a task contributes, on task data.
+
+Progressive Neural Networks (Rusu et al. 2016, arXiv:1606.04671, Sec. 5) observed that
+only part of the new capacity is used and measured it with the Average Perturbation
+Sensitivity (APS): inject Gaussian noise at one point of the architecture and see how
+much performance drops. colonnade scores every live adapter into the task's column
+blocks and into its head three ways:
+
+* **ablation**: the change of accuracy and of mean cross-entropy when that adapter's
+  output is replaced by zeros (what pruning it would cost, before any fine-tuning);
+* **contribution share**: the mean over samples of ||adapter output|| / ||whole
+  pre-activation||, the pre-activation being the target layer's weighted output (its
+  bias included) plus every lateral into it;
+* **perturbation**, in the spirit of APS: Gaussian noise with each input feature's
+  (channel's) variance on the data, times ``noise``, is added to the adapter's input
+  only, so the source column's own path is untouched; we report the accuracy drop and
+  loss rise averaged over ``repeats`` draws, and ``aps``, the loss rise normalised over
+  the adapters into the same layer (as the paper normalises over columns at one layer;
+  the normalisation is recalled from memory, the noise scale is our choice).
+
+Everything runs through forward hooks that exist only while a score is measured, so
+the network's own computation is untouched (the tests check bit-identical logits).
+``score`` (the ablation loss rise) orders adapters for pruning.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import io
+import math
+from collections.abc import Callable, Iterator
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any
+
+import torch
+import torch.nn.functional as F
+
+from .data import load_task_data
+from .digest import file_digest
+from .errors import DataError, UsageError
+from .fit import EVAL_BATCH
+from .network import ProgressiveNet
+from .store import atomic_write, load, now, save
+
+__all__ = ["AdapterUsage", "UsageReport", "task_adapters", "measure", "ablation_scores",
+           "record_usage", "plot_usage", "usage_workspace", "PLOT_FORMATS"]
+
+PLOT_FORMATS = ("png", "svg", "pdf")
+
+
+@dataclass
+class AdapterUsage:
+    """The scores of one adapter; accuracy figures are fractions, losses in nats."""
+
+    key: str
+    kind: str
+    sources: list[int]
+    target: str  # "column K block B" or "head TASK"
+    layer: str  # "block B" or "head": the heat map's column
+    params: int
+    ablation_accuracy_drop: float = 0.0
+    ablation_loss_rise: float = 0.0
+    share: float = 0.0
+    perturb_accuracy_drop: float = 0.0
+    perturb_loss_rise: float = 0.0
+    aps: float = 0.0
+
+    @property
+    def score(self) -> float:
+        """What removing the adapter costs in loss: the pruning order, lowest first."""
+        return self.ablation_loss_rise
+
+    def to_dict(self) -> dict[str, Any]:
+        return {**asdict(self), "score": self.score}
+
+
+@dataclass
+class UsageReport:
+    task: str
+    samples: int
+    accuracy: float
+    loss: float
+    noise: float
+    repeats: int
+    adapters: list[AdapterUsage] = field(default_factory=list)
+    data: dict[str, Any] = field(default_factory=dict)
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"task": self.task, "samples": self.samples, "accuracy": self.accuracy,
+                "loss": self.loss, "noise": self.noise, "repeats": self.repeats,
+                "data": dict(self.data), "adapters": [a.to_dict() for a in self.adapters]}
+
+
+# ----------------------------------------------------------------------------- helpers
+def task_adapters(net: ProgressiveNet, task: str) -> list[tuple[str, str, tuple[int, int] | None]]:
+    """Live adapters into the task's column blocks and head: (key, layer, (column, block)).
+
+    Only these feed the task directly; adapters into earlier columns belong to the tasks
+    of those columns (and to every task that reaches them).
+    """
+    info = net.task(task)
+    out: list[tuple[str, str, tuple[int, int] | None]] = []
+    for b in range(len(net.columns[info.column].blocks)):
+        out += [(key, f"block {b}", (info.column, b))
+                for key, _ in net.adapters_into_block(info.column, b)]
+    out += [(key, "head", None) for key, _ in net.adapters_into_head(task)]
+    return out
+
+
+@contextlib.contextmanager
+def _hooks(registrations: list[Callable[[], Any]]) -> Iterator[None]:
+    """Register hooks for the duration of a block, and always remove them."""
+    handles = []
+    try:
+        for register in registrations:
+            handles.append(register())
+        yield
+    finally:
+        for h in handles:
+            h.remove()
+
+
+@torch.no_grad()
+def _run(net: ProgressiveNet, task: str, x: torch.Tensor, y: torch.Tensor,
+         after_batch: Callable[[], None] | None = None) -> tuple[float, float]:
+    """Accuracy and mean cross-entropy in eval mode, in the fixed evaluation batches."""
+    was_training = net.training
+    net.eval()
+    device = net.device
+    correct, loss = 0, 0.0
+    try:
+        for i in range(0, x.shape[0], EVAL_BATCH):
+            xb, yb = x[i:i + EVAL_BATCH].to(device), y[i:i + EVAL_BATCH].to(device)
+            logits = net(xb, task=task)
+            correct += int((logits.argmax(1) == yb).sum())
+            loss += float(F.cross_entropy(logits.double(), yb, reduction="sum"))
+            if after_batch is not None:
+                after_batch()
+    finally:
+        net.train(was_training)
+    n = max(int(x.shape[0]), 1)
+    return correct / n, loss / n
+
+
+def _zero_output(module: torch.nn.Module, inputs: Any, output: torch.Tensor) -> torch.Tensor:
+    return torch.zeros_like(output)
+
+
+def _check_data(net: ProgressiveNet, task: str, x: torch.Tensor, y: torch.Tensor) -> None:
+    if x.shape[0] == 0:
+        raise DataError("the usage data holds no samples")
+    if y.numel() != x.shape[0]:
+        raise DataError("usage scores need one label per sample")
+    net.task(task)
+
+
+# ----------------------------------------------------------------------------- scores
+def ablation_scores(net: ProgressiveNet, task: str, x: torch.Tensor, y: torch.Tensor,
+                    keys: list[str] | None = None) -> tuple[tuple[float, float],
+                                                            dict[str, tuple[float, float]]]:
+    """Baseline (accuracy, loss) and, per adapter, (accuracy drop, loss rise) when zeroed."""
+    _check_data(net, task, x, y)
+    keys = [k for k, _, _ in task_adapters(net, task)] if keys is None else keys
+    acc, loss = _run(net, task, x, y)
+    out = {}
+    for key in keys:
+        with _hooks([lambda m=net.adapters[key]: m.register_forward_hook(_zero_output)]):
+            a, lo = _run(net, task, x, y)
+        out[key] = (acc - a, lo - loss)
+    return (acc, loss), out
+
+
+def measure(net: ProgressiveNet, task: str, x: torch.Tensor, y: torch.Tensor,
+            noise: float = 1.0, repeats: int = 3, seed: int = 0) -> UsageReport:
+    """Score every live adapter feeding ``task`` on labelled data ``x``, ``y``."""
+    _check_data(net, task, x, y)
+    if not (noise > 0 and math.isfinite(noise)):
+        raise UsageError(f"the noise scale must be a positive number, got {noise}")
+    if repeats < 1:
+        raise UsageError(f"repeats must be at least 1, got {repeats}")
+    feeding = task_adapters(net, task)
+    report = UsageReport(task, int(x.shape[0]), 0.0, 0.0, float(noise), int(repeats))
+    if not feeding:
+        report.accuracy, report.loss = _run(net, task, x, y)
+        return report
+
+    # One clean pass: adapter outputs and inputs, and each target's weighted output.
+    info = net.task(task)
+    outputs: dict[str, torch.Tensor] = {}
+    weighted: dict[str, torch.Tensor] = {}
+    moments: dict[str, list[torch.Tensor]] = {}
+    counts: dict[str, int] = {}
+    share_sum: dict[str, float] = {k: 0.0 for k, _, _ in feeding}
+    targets: dict[str, list[str]] = {}
+    for key, layer, _ in feeding:
+        targets.setdefault(layer, []).append(key)
+
+    def keep_out(key: str, store: dict[str, torch.Tensor]):
+        def hook(module, inputs, output):
+            store[key] = output.detach()
+        return hook
+
+    def keep_moments(key: str):
+        def hook(module, inputs):
+            h = inputs[0].detach().double()
+            dims = [d for d in range(h.dim()) if d != 1]
+            s, s2 = h.sum(dims), (h * h).sum(dims)
+            if key in moments:
+                moments[key][0] += s
+                moments[key][1] += s2
+            else:
+                moments[key] = [s, s2]
+            counts[key] = counts.get(key, 0) + h.numel() // h.shape[1]
+        return hook
+
+    def after_batch() -> None:
+        for layer, keys in targets.items():
+            z = weighted[layer] + sum(outputs[k] for k in keys)
+            zn = z.flatten(1).double().norm(dim=1).clamp_min(1e-30)
+            for k in keys:
+                share_sum[k] += float((outputs[k].flatten(1).double().norm(dim=1) / zn).sum())
+
+    regs: list[Callable[[], Any]] = []
+    for key, _, _ in feeding:
+        m = net.adapters[key]
+        regs.append(lambda m=m, key=key: m.register_forward_hook(keep_out(key, outputs)))
+        regs.append(lambda m=m, key=key: m.register_forward_pre_hook(keep_moments(key)))
+    for layer, keys in targets.items():
+        if layer == "head":
+            target_module = net.heads[task]
+        else:
+            target_module = net.columns[info.column].blocks[int(layer.split()[1])].weighted
+        regs.append(lambda m=target_module, layer=layer:
+                    m.register_forward_hook(keep_out(layer, weighted)))
+    with _hooks(regs):
+        report.accuracy, report.loss = _run(net, task, x, y, after_batch)
+
+    scores = {}
+    for key, layer, _ in feeding:
+        a = net.adapter_info[key]
+        scores[key] = AdapterUsage(key, a.kind, list(net.adapter_sources(key)), a.target,
+                                   layer, sum(p.numel() for p in net.adapters[key].parameters()),
+                                   share=share_sum[key] / report.samples)
+
+    # Ablation: the adapter's output replaced by zeros.
+    _, ablated = ablation_scores(net, task, x, y, [k for k, _, _ in feeding])
+    for key, (da, dl) in ablated.items():
+        scores[key].ablation_accuracy_drop, scores[key].ablation_loss_rise = da, dl
+
+    # Perturbation: noise scaled to each input feature's variance on the data.
+    gen = torch.Generator().manual_seed(seed)
+    for key, _, _ in feeding:
+        s, s2 = moments[key]
+        mean = s / counts[key]
+        std = (s2 / counts[key] - mean * mean).clamp_min(0.0).sqrt()
+
+        def add_noise(module, inputs, std=std):
+            h = inputs[0]
+            shape = [1] * h.dim()
+            shape[1] = h.shape[1]
+            scale = (noise * std).to(h.dtype).reshape(shape).to(h.device)
+            eps = torch.randn(h.shape, generator=gen, dtype=h.dtype).to(h.device)
+            return (h + eps * scale,)
+
+        drops, rises = [], []
+        for _ in range(repeats):
+            with _hooks([lambda m=net.adapters[key], f=add_noise:
+                         m.register_forward_pre_hook(f)]):
+                a, lo = _run(net, task, x, y)
+            drops.append(report.accuracy - a)
+            rises.append(lo - report.loss)
+        scores[key].perturb_accuracy_drop = sum(drops) / repeats
+        scores[key].perturb_loss_rise = sum(rises) / repeats
+
+    for keys in targets.values():
+        total = sum(max(scores[k].perturb_loss_rise, 0.0) for k in keys)
+        for k in keys:
+            scores[k].aps = max(scores[k].perturb_loss_rise, 0.0) / total if total > 0 else 0.0
+    report.adapters = [scores[k] for k, _, _ in feeding]
+    return report
+
+
+# ----------------------------------------------------------------------------- records
+def record_usage(net: ProgressiveNet, report: UsageReport) -> None:
+    """Keep the latest scores in the manifest: per task, and on each adapter's record.
+
+    Only records change; no tensor does, so every seal stays exact.
+    """
+    when = now()
+    entry = report.to_dict()
+    entry["time"] = when
+    entry["adapters"] = {a.key: {k: v for k, v in a.to_dict().items() if k != "key"}
+                         for a in report.adapters}
+    net.meta.setdefault("usage", {})[report.task] = entry
+    for a in report.adapters:
+        net.adapter_info[a.key].extra["usage"] = {
+            "task": report.task, "time": when, "score": a.score, "share": a.share,
+            "ablation_accuracy_drop": a.ablation_accuracy_drop,
+            "ablation_loss_rise": a.ablation_loss_rise, "aps": a.aps,
+            "perturb_loss_rise": a.perturb_loss_rise}
+
+
+def _source_label(sources: list[int]) -> str:
+    if len(sources) == 1:
+        return f"column {sources[0]}"
+    return "columns " + "+".join(str(s) for s in sources)
+
+
+def plot_usage(report: UsageReport, path: str | Path) -> None:
+    """A heat map of contribution share, source column against layer, written atomically."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    path = Path(path)
+    fmt = path.suffix.lower().lstrip(".")
+    rows = sorted({_source_label(a.sources) for a in report.adapters},
+                  key=lambda s: [int(t) for t in s.split()[1].split("+")])
+    cols = sorted({a.layer for a in report.adapters},
+                  key=lambda s: (s == "head", int(s.split()[1]) if s != "head" else 0))
+    grid = torch.full((len(rows), len(cols)), float("nan"))
+    for a in report.adapters:
+        grid[rows.index(_source_label(a.sources)), cols.index(a.layer)] = a.share
+    fig, ax = plt.subplots(figsize=(1.6 + 1.3 * max(len(cols), 1), 1.2 + 0.6 * max(len(rows), 1)))
+    try:
+        image = ax.imshow(grid.numpy(), cmap="viridis", vmin=0.0, aspect="auto")
+        ax.set_xticks(range(len(cols)), cols)
+        ax.set_yticks(range(len(rows)), rows)
+        ax.set_xlabel(f"layer of task {report.task!r}")
+        ax.set_ylabel("source")
+        for a in report.adapters:
+            r, c = rows.index(_source_label(a.sources)), cols.index(a.layer)
+            ax.text(c, r, f"{a.share:.2f}\nΔloss {a.ablation_loss_rise:.3f}", ha="center",
+                    va="center", fontsize=7, color="white")
+        fig.colorbar(image, ax=ax, label="contribution share")
+        ax.set_title("lateral adapter use (share of the pre-activation norm)", fontsize=9)
+        fig.tight_layout()
+        buf = io.BytesIO()
+        fig.savefig(buf, format=fmt)
+    finally:
+        plt.close(fig)
+    atomic_write(path, buf.getvalue())
+
+
+def _check_plot_path(path: str | Path | None) -> None:
+    if path is None:
+        return
+    path = Path(path)
+    if path.suffix.lower().lstrip(".") not in PLOT_FORMATS:
+        raise UsageError(f"{path}: the plot must end in one of "
+                         f"{', '.join('.' + f for f in PLOT_FORMATS)}")
+    if not path.parent.is_dir():
+        raise UsageError(f"{path.parent}: no such folder for the plot")
+
+
+def usage_workspace(folder: str | Path, task: str, data: str | Path,
+                    plot: str | Path | None = None, noise: float = 1.0, repeats: int = 3,
+                    ) -> dict[str, Any]:
+    """``colonnade usage``: score the adapters feeding a task, record them, save, plot."""
+    _check_plot_path(plot)
+    net = load(folder)
+    info = net.task(task)
+    loaded = load_task_data(data, net.input_shape, classes=info.classes, need_labels=True,
+                            split=False)
+    if not task_adapters(net, task):
+        raise UsageError(f"task {task!r} has no live lateral adapters, so there is nothing "
+                         f"to score")
+    report = measure(net, task, loaded.x, loaded.y, noise=noise, repeats=repeats,
+                     seed=net.spec.train.seed)
+    report.data = {"source": str(data), "sha256": file_digest(data)}
+    record_usage(net, report)
+    save(net, folder)
+    if plot is not None:
+        plot_usage(report, plot)
+    return report.to_dict()
