@@ -95,7 +95,7 @@ def test_bad_data_and_flags_leave_the_workspace_unchanged(files, capsys):
         (["grow", files["ws"], "--task", "b", "--train", files["a"], "--mode", "head",
           "--on", "zz"], "no task named 'zz'"),
         (["grow", files["ws"], "--task", "b", "--train", files["a"], "--on", "a"],
-         "--on applies to --mode head only"),
+         "--on applies to --mode head"),
         (["grow", files["ws"], "--task", "b", "--train", files["a"], "--device", "cuda"],
          "cuda"),
         (["grow", files["ws"], "--task", "9b", "--train", files["a"]], "must start with a letter"),

@@ -139,7 +139,7 @@ def test_task_macs_match_flop_counter(grown):
     for task in grown.tasks:
         cost = costs.task_cost(grown, task)
         # Source: FlopCounterMode over the task's real forward pass, FLOPs / 2.
-        assert cost.path.macs == flop_macs(lambda: grown(x, task=task))
+        assert cost.path.macs == flop_macs(lambda t=task: grown(x, task=t))
         assert cost.path.flops == 2 * cost.path.macs
         assert sum(cost.path.macs_by_part.values()) == cost.path.macs
     total = costs.network_cost(grown)
@@ -281,3 +281,43 @@ def test_peak_activation_views_write_nothing():
     path = costs.task_cost(net, "a").path
     assert path.activation_elements == 14
     assert math.prod((2, 4)) + 6 == path.activation_elements
+
+
+def _merge_by_hand(net, keys, rank=3):
+    """Replace single-source adapters into one layer by a joint adapter, as a merge does."""
+    from colonnade.adapters import JointAdapter
+    from colonnade.network import AdapterInfo
+
+    infos = [net.adapter_info[k] for k in keys]
+    sources = tuple(i.source for i in infos)
+    shapes, target_shape, target = net.lateral_geometry(sources, infos[0].column,
+                                                        infos[0].block, infos[0].head)
+    key = "joint_" + "_".join(keys)
+    for k in keys:
+        net.adapter_info[k].state = "merged"
+        del net.adapters[k]
+    net.adapters[key] = JointAdapter(shapes, target_shape, target, rank)
+    net.adapter_info[key] = AdapterInfo(key, "joint", sources[0], column=infos[0].column,
+                                        block=infos[0].block, head=infos[0].head,
+                                        extra={"sources": list(sources), "rank": rank})
+    net._reindex()
+    net.freeze()
+    return key
+
+
+@pytest.mark.parametrize("name", ["mlp_linear.yaml", "conv1d_spectra.yaml"])
+def test_joint_adapters_are_costed_from_the_live_modules(name):
+    net = _grown(_spec(name, "nonlinear"))
+    key = _merge_by_hand(net, ["c2_b1_from_c0", "c2_b1_from_c1"])
+    x = torch.randn(1, *net.input_shape)
+    ledger = costs.ledger_of(net)
+    for t in ledger.tasks:
+        # Sources: FlopCounterMode over the real forward; numel() of the closure.
+        assert t.path.macs == flop_macs(lambda task=t.task: net(x, task=task))
+        assert t.path.params.total == sum(p.numel() for p in _closure_params(net, t.task))
+    assert sum(t.added.total for t in ledger.tasks) == sum(p.numel() for p in net.parameters())
+    assert ledger.total.macs == flop_macs(net.forward_all, x)
+    assert costs.adapter_macs(net.adapters[key]) == flop_macs(
+        net.adapters[key], torch.randn(1, *net.adapters[key].source_shape))
+    # The joint adapter first concatenates its two sources: a tensor of their total size.
+    assert net.adapters[key].source_shape[0] == sum(s[0] for s in net.adapters[key].source_shapes)

@@ -5,6 +5,8 @@ Progressive Neural Networks: Rusu et al. 2016, arXiv:1606.04671.
 
 __version__ = "0.1.0"
 
+# colonnade.graph is the graph module, callable: colonnade.graph(net) -> networkx.DiGraph.
+from . import graph  # noqa: E402
 from .data import TaskData, load_task_data  # noqa: E402
 from .errors import (  # noqa: E402
     ColonnadeError,
@@ -14,6 +16,7 @@ from .errors import (  # noqa: E402
     UsageError,
     WorkspaceError,
 )
+from .graph import build_graph  # noqa: E402
 from .growth import grow  # noqa: E402
 from .network import ProgressiveNet  # noqa: E402
 from .spec import Spec, load_spec, parse_spec  # noqa: E402
@@ -31,6 +34,8 @@ __all__ = [
     "load",
     "save",
     "grow",
+    "graph",
+    "build_graph",
     "ColonnadeError",
     "SpecError",
     "DataError",

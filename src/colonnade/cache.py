@@ -42,10 +42,10 @@ def constant_columns(net: ProgressiveNet, task: str) -> list[int]:
     for k in net.closure(task).columns:  # sorted: sources come before their targets
         if net.is_trainable(f"column:{k}"):
             continue
-        inputs = [(key, source) for b in range(len(net.columns[k].blocks))
-                  for key, source in net.adapters_into_block(k, b)]
-        if all(not net.is_trainable(f"adapter:{key}") and source in constant
-               for key, source in inputs):
+        keys = [key for b in range(len(net.columns[k].blocks))
+                for key, _ in net.adapters_into_block(k, b)]
+        if all(not net.is_trainable(f"adapter:{key}")
+               and all(j in constant for j in net.adapter_sources(key)) for key in keys):
             constant.append(k)
     return constant
 
@@ -58,11 +58,13 @@ def needed_outputs(net: ProgressiveNet, task: str) -> dict[int, tuple[int, ...]]
         if k in constant:
             continue
         for b in range(len(net.columns[k].blocks)):
-            for _, source in net.adapters_into_block(k, b):
-                if source in constant:
-                    needed.setdefault(source, set()).add(b - 1)
+            for key, _ in net.adapters_into_block(k, b):
+                for j in net.adapter_sources(key):  # several for a joint adapter
+                    if j in constant:
+                        needed.setdefault(j, set()).add(b - 1)
     info = net.task(task)
-    readers = [info.column] + [source for _, source in net.adapters_into_head(task)]
+    readers = [info.column] + [j for key, _ in net.adapters_into_head(task)
+                               for j in net.adapter_sources(key)]
     for j in readers:
         if j in constant:
             needed.setdefault(j, set()).add(len(net.columns[j].blocks) - 1)
@@ -148,7 +150,9 @@ class FrozenActivations:
     def _read(self, key: tuple[int, int], idx: torch.Tensor | slice) -> torch.Tensor:
         if key in self._memory:
             store = self._memory[key]
-            return store[idx if isinstance(idx, slice) else idx.to(store.device)]
+            if isinstance(idx, slice):
+                return store[idx]
+            return store.index_select(0, idx.to(store.device))  # faster than store[idx]
         array, dtype, shape = self._disk[key]
         rows = array[idx if isinstance(idx, slice) else idx.cpu().numpy()]
         value = torch.from_numpy(np.array(rows, copy=True)).view(dtype)  # own the memory

@@ -10,6 +10,7 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import os
 import sys
 from collections.abc import Callable, Sequence
 from typing import Any
@@ -104,11 +105,16 @@ def _grow(args: argparse.Namespace) -> int:
     entry = grow_workspace(args.workspace, args.task, args.train, val=args.val, mode=args.mode,
                            on=args.on, width=args.width, classes=args.classes,
                            epochs=args.epochs, device=args.device, progress=not args.quiet,
-                           cache=False if args.no_cache else None, cache_mb=args.cache_mb)
+                           cache=False if args.no_cache else None, cache_mb=args.cache_mb,
+                           target=args.target, nproc=args.nproc)
+    if entry is None:  # a torchrun rank other than 0: rank 0 reports
+        return 0
     what = (f"a column (column {entry['column']}, width {entry['width']:g})"
             if entry["step"] == "column_added" else f"a head on column {entry['column']}")
     print(f"grew task {entry['task']!r} as {what}: {entry['params_added']:,} new parameters, "
           f"validation accuracy {entry['val_accuracy']:.4f}")
+    if "auto" in entry:
+        print(f"auto: chose a {entry['auto']['chose']}: {entry['auto']['reason']}")
     return 0
 
 
@@ -379,6 +385,90 @@ def _report(args: argparse.Namespace) -> int:
     return 0
 
 
+def _draw(args: argparse.Namespace) -> int:
+    from .draw import draw_workspace
+
+    result = draw_workspace(args.workspace, args.output, task=args.task, compact=args.compact,
+                            direction=args.direction, show_removed=args.show_pruned)
+    what = "compact diagram" if result["compact"] else "diagram"
+    focus = f", focused on task {result['task']!r}" if result["task"] else ""
+    print(f"wrote the {what} ({result['format']}{focus}) to {result['output']}")
+    return 0
+
+
+def _non_negative_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"expected a whole number of at least 0, got {value}")
+    return value
+
+
+def _usage(args: argparse.Namespace) -> int:
+    from .usage import usage_workspace
+
+    r = usage_workspace(args.workspace, args.task, args.data, plot=args.plot, noise=args.noise,
+                        repeats=args.repeats)
+    if args.json:
+        _print_json(r)
+        return 0
+    print(f"adapter use for task {r['task']!r} on {r['samples']} samples of {args.data}: "
+          f"accuracy {r['accuracy']:.4f}, loss {r['loss']:.4f}")
+    print()
+    print(table([[a["key"], "+".join(f"c{s}" for s in a["sources"]), a["layer"], a["params"],
+                  100 * a["ablation_accuracy_drop"], a["ablation_loss_rise"],
+                  100 * a["mean_ablation_accuracy_drop"], a["score"], a["share"],
+                  a["varying_share"], a["aps"]]
+                 for a in sorted(r["adapters"], key=lambda a: -a["score"])],
+                ["adapter", "from", "into", "params", "zeroed -acc pts", "zeroed +loss",
+                 "mean -acc pts", "mean +loss (score)", "share", "varying share", "APS"]))
+    print("zeroed / mean: the adapter's output replaced by zeros / by its mean per channel; "
+          "share: mean |adapter output| / |pre-activation|, varying share: the same with "
+          "means removed; APS: loss rise under noise scaled to each input feature's "
+          "variance, normalised per layer (Rusu et al. 2016); sorted by score")
+    if args.plot:
+        print(f"heat map written to {args.plot}")
+    return 0
+
+
+def _trim(args: argparse.Namespace) -> int:
+    from .trim import trim_workspace
+
+    r = trim_workspace(args.workspace, args.task, args.data, max_drop=args.max_drop,
+                       target_params=args.target_params, target_macs=args.target_macs,
+                       finetune=args.finetune or 0, train=args.train, merge=args.merge,
+                       progress=not args.quiet)
+    if args.json:
+        _print_json(r)
+        return 0
+    rows = []
+    for s in r["steps"]:
+        what = ", ".join(s["adapters"]) if s["adapters"] else "-"
+        if s["step"] == "adapters_merged":
+            what += (f" -> {s['detail']['into']} (rank {s['detail']['rank']}, error "
+                     f"{s['detail']['error']:.4f})")
+        rows.append([s["step"], what, s["params_saved"], s["macs_saved"], s["accuracy"]])
+    if rows:
+        print(table(rows, ["step", "adapters", "params saved", "MACs saved", "accuracy"]))
+        print()
+    for key, why in r["kept"].items():
+        print(f"kept {key}: {why}")
+    for m in r["merges_rejected"]:
+        print(f"not merged {', '.join(m['adapters'])}: {m['reason']}")
+    dropped = r["columns_dropped"]
+    print(f"task {r['task']!r} on {r['samples']} samples: accuracy {r['accuracy_before']:.4f} "
+          f"-> {r['accuracy_after']:.4f} ({r['accuracy_change_points']:+.2f} points, at most "
+          f"-{r['max_drop']:g} allowed); parameters on its path {r['params_before']:,} -> "
+          f"{r['params_after']:,} ({r['params_saved']:,} saved); MACs {r['macs_before']:,} -> "
+          f"{r['macs_after']:,} ({r['macs_saved']:,} saved)"
+          + (f"; columns {', '.join(map(str, dropped))} left its path" if dropped else ""))
+    print(f"stopped: {r['stopped']}" + ("" if r["steps"] else "; nothing changed, the "
+                                                               "workspace was not written"))
+    return 0
+
+
 # ----------------------------------------------------------------------------- parser
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
@@ -405,15 +495,22 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--train", required=True, help="training data (.npz or .csv)")
     p.add_argument("--val", help="validation data; default: x_val/y_val in the file, "
                                  "else a stratified split")
-    p.add_argument("--mode", choices=["column", "head"], default="column")
-    p.add_argument("--on", help="with --mode head: the task whose column carries the head "
-                                "(default: the newest column)")
+    p.add_argument("--mode", choices=["column", "head", "auto"], default="column",
+                   help="auto: a head if it reaches --target on validation data, else a "
+                        "column")
+    p.add_argument("--target", type=_positive_float, metavar="ACCURACY",
+                   help="with --mode auto: the validation accuracy (0-1) a head must reach")
+    p.add_argument("--on", help="with --mode head or auto: the task whose column carries the "
+                                "head (default: the newest column)")
     p.add_argument("--width", type=_positive_float, default=1.0,
                    help="width factor of the new column against the template")
     p.add_argument("--classes", type=_class_count, help="class count (default: from labels)")
     p.add_argument("--epochs", type=_positive_int, help="override the spec's epochs")
     p.add_argument("--device", default="cpu", help="cpu (default) or cuda")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.add_argument("--nproc", type=_positive_int,
+                   help="train data-parallel with N local worker processes (torch.distributed: "
+                        "gloo on cpu, nccl on cuda)")
     p.add_argument("--cache-mb", type=_non_negative_float,
                    help="memory cap (MiB) for cached frozen-column outputs; beyond it they "
                         "spill to a temporary file (default: the spec's train.cache_mb)")
@@ -487,6 +584,55 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--repeats", type=_positive_int, default=20,
                    help="timed calls per latency figure (default 20)")
     p.add_argument("--no-latency", action="store_true", help="skip the latency measurement")
+
+    p = verb("draw", _draw, "draw the grown network for a design review (.svg, .png, .pdf, "
+                            "or .dot source)")
+    p.add_argument("workspace")
+    p.add_argument("-o", "--output", required=True,
+                   help="FILE.svg, FILE.png or FILE.pdf (rendered by graphviz's dot), or "
+                        "FILE.dot (the source)")
+    p.add_argument("--task", help="highlight this task's closure and fade the rest")
+    p.add_argument("--compact", action="store_true",
+                   help="one box per column, the adapters between each pair of columns "
+                        "bundled into one labelled box (for many tasks)")
+    p.add_argument("--direction", choices=["BT", "TB", "LR", "RL"], default="BT",
+                   type=str.upper, help="where data flows: BT bottom to top (default), TB "
+                                        "top to bottom, LR left to right, RL right to left")
+    p.add_argument("--show-pruned", action="store_true",
+                   help="draw pruned and merged adapters dotted and faint (default: hidden)")
+    p = verb("usage", _usage, "score how much each lateral adapter feeding a task is used")
+    p.add_argument("workspace")
+    p.add_argument("--task", required=True)
+    p.add_argument("--data", required=True, help="labelled task data (.npz or .csv)")
+    p.add_argument("--json", action="store_true")
+    p.add_argument("--plot", metavar="FILE", help="heat map of source column against layer "
+                                                  "(.png, .svg or .pdf)")
+    p.add_argument("--noise", type=_positive_float, default=1.0,
+                   help="perturbation noise, in standard deviations of each input feature")
+    p.add_argument("--repeats", type=_positive_int, default=3,
+                   help="noise draws averaged per adapter")
+
+    p = verb("trim", _trim, "prune (and merge) low-use adapters of an unsealed task within a "
+                            "tolerance")
+    p.add_argument("workspace")
+    p.add_argument("--task", required=True)
+    p.add_argument("--data", required=True, help="labelled data the accuracy is checked on")
+    p.add_argument("--max-drop", type=_non_negative_float, default=0.5, metavar="POINTS",
+                   help="accuracy points the task may lose on --data (default 0.5)")
+    group = p.add_mutually_exclusive_group()
+    group.add_argument("--target-params", type=_non_negative_int, metavar="N",
+                       help="stop once the task's path has at most N parameters")
+    group.add_argument("--target-macs", type=_non_negative_int, metavar="N",
+                       help="stop once the task's path needs at most N MACs")
+    p.add_argument("--finetune", type=_positive_int, metavar="EPOCHS",
+                   help="fine-tune the task's own parts for EPOCHS after a removal that "
+                        "needs it (needs --train)")
+    p.add_argument("--train", help="the task's training data, for --finetune")
+    p.add_argument("--merge", action="store_true",
+                   help="then fold each layer's remaining adapters into one joint low-rank "
+                        "adapter")
+    p.add_argument("--json", action="store_true")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
     return parser
 
 
@@ -501,6 +647,12 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("colonnade: interrupted; the workspace is unchanged", file=sys.stderr)
         return 130
+    except BrokenPipeError:
+        # The reader went away (``colonnade show --json | head``): stop quietly, as the
+        # Python documentation on SIGPIPE advises, without a traceback at exit.
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 1
 
 
 if __name__ == "__main__":

@@ -47,7 +47,8 @@ MAC_CONVENTION = ("MACs: multiply-accumulates of dense and conv layers (columns,
 ACTIVATION_RULE = ("peak activation memory: the largest total size of the tensors alive at "
                    "once during one batch-1 forward pass in colonnade's execution order "
                    "(columns left to right, in each column its layers in order, each "
-                   "block's lateral adapters in source order after its weighted layer, "
+                   "block's lateral adapters in source order after its weighted layer "
+                   "(a joint adapter first concatenates its sources), "
                    "then the heads); the input counts, every layer writes a new tensor "
                    "except flatten, dropout and identity (views), and a tensor is freed "
                    "right after its last reader; returned logits stay alive to the end")
@@ -295,8 +296,9 @@ def _trace(net: ProgressiveNet, columns: Iterable[int], heads: Iterable[str]) ->
         hs: list[tuple[int, Shape]] = []
         for b, block in enumerate(col.blocks):
             z, zshape = tr.layer(f"column {k} block {b} weighted", block.weighted, h, shape)
-            for key, source in net.adapters_into_block(k, b):
-                a = _trace_adapter(tr, key, net.adapters[key], outs[source][b - 1][0])
+            for key, _ in net.adapters_into_block(k, b):
+                a = _trace_adapter(tr, net, key, [outs[j][b - 1][0] for j in
+                                                  net.adapter_sources(key)])
                 z = tr.op(f"column {k} block {b} lateral sum", (z, a), math.prod(zshape))
             h, shape = tr.layer(f"column {k} block {b} post", block.post, z, zshape)
             hs.append((h, shape))
@@ -305,15 +307,20 @@ def _trace(net: ProgressiveNet, columns: Iterable[int], heads: Iterable[str]) ->
         col = net.task_info[task].column
         h, shape = outs[col][-1]
         logits, lshape = tr.layer(f"head {task}", net.heads[task], h, shape)
-        for key, source in net.adapters_into_head(task):
-            a = _trace_adapter(tr, key, net.adapters[key], outs[source][-1][0])
+        for key, _ in net.adapters_into_head(task):
+            a = _trace_adapter(tr, net, key, [outs[j][-1][0] for j in net.adapter_sources(key)])
             logits = tr.op(f"head {task} lateral sum", (logits, a), math.prod(lshape))
         tr.keep.add(logits)
     return tr
 
 
-def _trace_adapter(tr: _Trace, key: str, adapter: nn.Module, t: int) -> int:
+def _trace_adapter(tr: _Trace, net: ProgressiveNet, key: str, sources: list[int]) -> int:
+    adapter = net.adapters[key]
     shape = tuple(adapter.source_shape)
+    if len(sources) == 1:
+        t = sources[0]
+    else:  # a joint adapter reads its sources concatenated: a new tensor
+        t = tr.op(f"adapter {key} concat", sources, math.prod(shape))
     for name, step in _adapter_steps(adapter):
         if step is None:  # alpha * h: a new tensor of the source's shape
             t = tr.op(f"adapter {key} {name}", (t,), math.prod(shape))
@@ -328,8 +335,9 @@ def peak_activation(net: ProgressiveNet, columns: Iterable[int], heads: Iterable
 
     The rule, in full: walk the forward pass in colonnade's execution order (columns in
     increasing index; in each, the stem, then per block the weighted layer, each live
-    lateral adapter into it in source order -- its scale, maps and activation -- and the
-    sum into the block, then the block's other layers; then each head, its head adapters
+    lateral adapter into it in source order -- the concatenation of its sources if it
+    reads several (a joint adapter), its scale, maps and activation -- and the sum into
+    the block, then the block's other layers; then each head, its head adapters
     and their sums). Every step writes a new tensor, except flatten, dropout and identity,
     which are views. A tensor is alive from the step that writes it to the last step that
     reads it; the input is alive from the start; returned logits stay alive to the end.

@@ -108,11 +108,12 @@ def _node_style(state: str, faded: bool) -> dict[str, str]:
     return attrs
 
 
-def _usage_width(usage: float | None, top: float) -> str:
-    """Pen width of a lateral edge: 1.4 when unmeasured, else 0.6 to 4.6 by usage."""
+def _usage_width(usage: float | None, top: float, low: float = 0.6, high: float = 4.6,
+                 unmeasured: float = 1.4) -> str:
+    """Pen width by measured usage, from ``low`` (unused) to ``high`` (the most used)."""
     if usage is None or top <= 0:
-        return "1.4"
-    return f"{0.6 + 4.0 * max(usage, 0.0) / top:.2f}"
+        return f"{unmeasured:g}"
+    return f"{low + (high - low) * max(usage, 0.0) / top:.2f}"
 
 
 def _lateral_style(kind: str | list[str], state: str, live: bool, faded: bool,
@@ -145,10 +146,11 @@ def _title(G: nx.DiGraph, net: ProgressiveNet, task: str | None, compact: bool) 
         line += f"<BR/>sealed: {_e(_names(sealed, 8))}"
     if task is not None:
         c = net.closure(task)
-        cols = ", ".join(str(k) for k in c.columns)
-        line += (f"<BR/>focus: task {_e(task)} runs column{'s' * (len(c.columns) != 1)} "
-                 f"{cols}, {len(c.adapters)} adapter{'s' * (len(c.adapters) != 1)} and its "
-                 f"head; the rest is faded")
+        cols = [str(k) for k in c.columns]
+        cols_text = cols[0] if len(cols) == 1 else ", ".join(cols[:-1]) + " and " + cols[-1]
+        line += (f"<BR/>focus: task {_e(task)} runs column{'s' * (len(cols) != 1)} "
+                 f"{cols_text} with {len(c.adapters)} lateral "
+                 f"adapter{'s' * (len(c.adapters) != 1)} and its head; the rest is faded")
     if compact:
         line += "<BR/>" + _small(
             "one box per column; a small box where column j's line meets column k's row "
@@ -409,9 +411,8 @@ def _compact(dot: Any, G: nx.DiGraph, focus: set[str] | None, show_removed: bool
         if show_removed and d["removed"]:
             text.append(f"{d['removed']} removed")
         style = _node_style(state, fade)
-        style.update(fillcolor="#FFFFFF", style=style["style"].replace("filled", "filled"),
-                     color=_FADED["line"] if fade else color,
-                     penwidth=_usage_width(d["usage"], top) if live else "1.0")
+        style.update(fillcolor="#FFFFFF", color=_FADED["line"] if fade else color,
+                     penwidth=_usage_width(d["usage"], top, 0.8, 2.6, 1.0) if live else "1.0")
         if not live:
             style.update(style="dotted", color=_REMOVED, fontcolor=_REMOVED)
         name = f"b{j}_{k}"
@@ -427,11 +428,12 @@ def _compact(dot: Any, G: nx.DiGraph, focus: set[str] | None, show_removed: bool
         sources = sorted(by_row.get(k, []))
         # Each column reads the input: a small input stub closes its row.
         stub = f"input_c{k}"
-        fade = faded(C.nodes[n]["part"])
+        col_fade = faded(C.nodes[n]["part"])
         dot.node(stub, id=stub, label="input", shape="oval", fontname=_FONT, fontsize="8",
                  height="0.25", width="0.5", margin="0.02,0.01", style="filled",
-                 fillcolor="#FFFFFF", color=_FADED["line"] if fade else "#404040",
-                 fontcolor=_FADED["font"] if fade else "black", **_cls(f"input {mark(fade)}"))
+                 fillcolor="#FFFFFF", color=_FADED["line"] if col_fade else "#404040",
+                 fontcolor=_FADED["font"] if col_fade else "black",
+                 **_cls(f"input {mark(col_fade)}"))
         row = [f"b{j}_{k}" for j in sources] + [n, stub]
         with dot.subgraph() as r:
             r.attr(rank="same")
@@ -440,15 +442,15 @@ def _compact(dot: Any, G: nx.DiGraph, focus: set[str] | None, show_removed: bool
         for i, (a, b) in enumerate(zip(row, row[1:], strict=False)):
             if b == stub:  # drawn from the column to the stub, with the arrow at the column
                 dot.edge(a, b, dir="back", id=f"forward:{INPUT}:{n}", penwidth="1.0",
-                         color=_FADED["edge"] if fade else _FORWARD, arrowsize="0.6",
-                         **_cls(f"forward {mark(fade)}"))
+                         color=_FADED["edge"] if col_fade else _FORWARD, arrowsize="0.6",
+                         **_cls(f"forward {mark(col_fade)}"))
                 continue
             d = cells[sources[i], k]
             live = d["count"] > 0
             fade = not any((j, k) in focused for j in sources[:i + 1])
             state = "sealed" if d["sealed"] else ("frozen" if d["frozen"] else "trainable")
             attrs = _lateral_style(d["kinds"] or ["removed"], state, live, fade,
-                                   _usage_width(d["usage"], top))
+                                   _usage_width(d["usage"], top, 0.6, 3.2))
             attrs.pop("constraint")
             if b != n:
                 attrs["arrowhead"] = "none"
@@ -515,10 +517,10 @@ def render(net: ProgressiveNet, output: str | Path, task: str | None = None,
     import graphviz
 
     output = Path(output)
-    fmt = _format_of(output)
     if output.is_dir():
         raise UsageError(f"{output}: is a folder; give a file name such as "
                          f"{output / 'architecture.svg'}")
+    fmt = _format_of(output)
     if not output.parent.is_dir():
         raise UsageError(f"{output.parent}: no such folder for the diagram; create it first")
     if task is not None:

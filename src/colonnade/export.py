@@ -190,7 +190,11 @@ def torch_bytes(blob: dict[str, Any]) -> bytes:
 
 def onnx_bytes(blob: dict[str, Any]) -> bytes:
     """The standalone model as ONNX, batch dimension dynamic, metadata in metadata_props."""
-    import onnx
+    try:
+        import onnx
+    except ImportError:
+        raise ExportError("ONNX export needs the onnx package; install it with "
+                          "pip install 'colonnade[onnx]', or export to .pt") from None
 
     model = standalone_model(blob)
     example = torch.zeros(2, *blob["input_shape"])

@@ -13,6 +13,7 @@ import time
 import warnings
 from collections.abc import Callable
 from dataclasses import asdict, dataclass, field
+from typing import Any
 
 import torch
 import torch.nn.functional as F
@@ -136,15 +137,20 @@ Transform = Callable[[torch.Tensor, int], torch.Tensor]
 def fit_task(net: ProgressiveNet, task: str, data: TaskData, train: TrainSpec,
              epochs: int | None = None, seed: int | None = None, progress: bool = True,
              transform: Transform | None = None, cache: bool | None = None,
-             cache_mb: float | None = None) -> TrainRecord:
+             cache_mb: float | None = None, ddp: Any = None) -> TrainRecord:
     """Train the net's trainable parts on ``task`` with early stopping on validation.
 
     Keeps the epoch with the best validation accuracy (ties: lower loss). ``transform``
     maps each training batch (on the net's device) and the epoch number to the batch
     to train on, e.g. for augmentation; it switches the cache of training rows off.
     ``cache`` and ``cache_mb`` override ``train.cache`` and ``train.cache_mb``.
+    ``ddp`` (distributed.DistributedHooks) trains data-parallel: ``data`` is then this
+    rank's shard, the trainable parts run wrapped in DistributedDataParallel, and norm
+    statistics are synchronised before each validation.
     """
     params = net.trainable_parameters()
+    if ddp is not None:
+        train = train.model_copy(update={"batch_size": ddp.batch_size(train.batch_size)})
     if not params:
         raise TrainingFailed("nothing is trainable; grow a column or head before training")
     epochs = epochs or train.epochs
@@ -157,6 +163,7 @@ def fit_task(net: ProgressiveNet, task: str, data: TaskData, train: TrainSpec,
     best_epoch, stale, curve = 0, 0, []
     start = time.perf_counter()
     frozen = _frozen_cache(net, task, data, train, transform, cache, cache_mb)
+    model = ddp.wrap(net, task) if ddp is not None else None
     bar = None
     if progress:
         from tqdm.auto import tqdm
@@ -168,6 +175,8 @@ def fit_task(net: ProgressiveNet, task: str, data: TaskData, train: TrainSpec,
         with torch.random.fork_rng(devices=[]):
             torch.manual_seed(seed)  # dropout masks
             for epoch in range(1, epochs + 1):
+                if ddp is not None:
+                    ddp.before_epoch(epoch)
                 net.train()
                 total, count = 0.0, 0
                 epoch_start = time.perf_counter()
@@ -175,7 +184,9 @@ def fit_task(net: ProgressiveNet, task: str, data: TaskData, train: TrainSpec,
                     xb, yb = data.x[idx].to(device), data.y[idx].to(device)
                     if transform is not None:
                         xb = transform(xb, epoch)
-                    logits = net(xb, task=task, given=frozen.train_rows(idx))
+                    given = frozen.train_rows(idx)
+                    logits = (net(xb, task=task, given=given) if model is None
+                              else model(xb, given))
                     loss = F.cross_entropy(logits, yb)
                     if not torch.isfinite(loss):
                         raise TrainingFailed(f"training diverged (loss {loss.item()}) in epoch "
@@ -186,6 +197,8 @@ def fit_task(net: ProgressiveNet, task: str, data: TaskData, train: TrainSpec,
                     total += loss.item() * idx.numel()
                     count += idx.numel()
                 train_loss = total / max(count, 1)
+                if ddp is not None:
+                    ddp.sync_buffers(net)
                 acc, vloss = evaluate(net, task, data.x_val, data.y_val, cached=frozen.val)
                 curve.append({"epoch": epoch, "train_loss": train_loss, "val_accuracy": acc,
                               "val_loss": vloss,

@@ -19,9 +19,9 @@ import types
 from typing import Any
 
 import networkx as nx
-import torch
 import torch.nn as nn
 
+from .costs import layer_macs, module_macs
 from .layers import layer_output_shape
 from .network import ProgressiveNet
 from .spec import Act, Conv1d, Conv2d, Dense, Dropout, Flatten, LayerSpec, Norm, Pool
@@ -29,9 +29,6 @@ from .spec import Act, Conv1d, Conv2d, Dense, Dropout, Flatten, LayerSpec, Norm,
 __all__ = ["build_graph", "column_graph", "layer_label", "closure_parts", "INPUT"]
 
 INPUT = "input"
-
-_WEIGHTED = (nn.Linear, nn.Conv1d, nn.Conv2d)
-
 
 # ----------------------------------------------------------------------------- labels
 def layer_label(layer: LayerSpec, out_shape: tuple[int, ...]) -> tuple[str, str]:
@@ -68,50 +65,6 @@ def _count(module: nn.Module | None) -> tuple[int, int]:
         return 0, 0
     return (sum(p.numel() for p in module.parameters()),
             sum(b.numel() for b in module.buffers()))
-
-
-def _module_macs(net: ProgressiveNet) -> dict[str, int]:
-    """MACs of every dense and conv module at batch 1, by module name.
-
-    A shape-only count: one forward of a zero sample records each weighted module's
-    output shape, then MACs = output elements x (input channels / groups) x kernel
-    elements (for a dense layer: out x in). Norms, activations, pooling and the
-    adapters' scalar scale count no MACs, as in torch.utils.flop_counter.
-    """
-    if not net.columns:
-        return {}
-    macs: dict[str, int] = {}
-    hooks = []
-
-    def record(name: str):
-        def hook(module: nn.Module, _inp: Any, out: torch.Tensor) -> None:
-            per_sample = out[0].numel()
-            if isinstance(module, nn.Linear):
-                macs[name] = macs.get(name, 0) + per_sample * module.in_features
-            else:
-                kernel = math.prod(module.kernel_size)
-                macs[name] = macs.get(name, 0) + per_sample * (
-                    module.in_channels // module.groups) * kernel
-        return hook
-
-    for name, module in net.named_modules():
-        if isinstance(module, _WEIGHTED):
-            hooks.append(module.register_forward_hook(record(name)))
-    was_training = net.training
-    dtype = next((p.dtype for p in net.parameters() if p.is_floating_point()), torch.float32)
-    try:
-        net.eval()  # batch norm statistics and dropout must not move
-        with torch.no_grad():
-            net.forward_all(torch.zeros((1, *net.input_shape), dtype=dtype, device=net.device))
-    finally:
-        for h in hooks:
-            h.remove()
-        net.train(was_training)
-    return macs
-
-
-def _sum_under(table: dict[str, int], prefix: str) -> int:
-    return sum(v for k, v in table.items() if k == prefix or k.startswith(prefix + "."))
 
 
 # ----------------------------------------------------------------------------- state
@@ -223,7 +176,8 @@ def build_graph(net: ProgressiveNet) -> nx.DiGraph:
     Node attributes: ``kind`` (input, layer, head), ``part`` (``column:K`` or
     ``head:TASK``, as ``net.part_modules`` names it), ``module`` (the dotted module name),
     ``column``, ``task``, ``op``, ``label``, ``in_shape``, ``out_shape``, ``params``,
-    ``buffers``, ``macs`` (batch 1), ``frozen``, ``sealed``, ``sealed_by``.
+    ``buffers``, ``macs`` (per sample, by the rule of ``costs.py``), ``frozen``, ``sealed``,
+    ``sealed_by``.
     Edge attributes: ``role`` (forward or lateral) and ``kind`` (forward, or the adapter
     kind); lateral edges add ``key``, ``part``, ``module``, ``state`` (live, pruned,
     merged, ...), ``params``, ``macs``, ``frozen``, ``sealed``, ``sealed_by``, ``usage``
@@ -236,7 +190,6 @@ def build_graph(net: ProgressiveNet) -> nx.DiGraph:
     ``lateral``, ``adapters`` (key -> figures of every adapter, the per-adapter table).
     """
     sealed_tasks, owners = _sealed(net)
-    macs = _module_macs(net)
 
     def state_of(part: str) -> dict[str, Any]:
         by = owners.get(part, [])
@@ -248,7 +201,6 @@ def build_graph(net: ProgressiveNet) -> nx.DiGraph:
                params=0, buffers=0, macs=0, frozen=True, sealed=False, sealed_by=[])
     ends: dict[int, dict[int, str]] = {}
     last: dict[int, str] = {}
-    firsts: dict[int, str] = {}
     for k, info in enumerate(net.column_info):
         part = f"column:{k}"
         layers = _column_layers(net, k)
@@ -256,17 +208,18 @@ def build_graph(net: ProgressiveNet) -> nx.DiGraph:
         prev = INPUT
         for layer in layers:
             op, text = layer_label(layer["layer"], layer["out"])
-            params, buffers = _count(_module(net, layer["module"]))
+            module = _module(net, layer["module"])
+            params, buffers = _count(module)
             G.add_node(layer["id"], kind="layer", part=part, module=layer["module"], column=k,
                        task=info.task, block=layer["block"], position=layer["position"],
                        template=layer["template"], op=op, label=text,
                        weighted=bool(layer["layer"].weighted), in_shape=list(layer["in"]),
                        out_shape=list(layer["out"]), params=params, buffers=buffers,
-                       macs=_sum_under(macs, layer["module"]), **state_of(part))
+                       macs=layer_macs(module, tuple(layer["in"])), **state_of(part))
             G.add_edge(prev, layer["id"], role="forward", kind="forward",
                        shape=list(layer["in"]))
             prev = layer["id"]
-        firsts[k], last[k] = layers[0]["id"], prev
+        last[k] = prev
     for name, t in net.task_info.items():
         part = f"head:{name}"
         params, buffers = _count(net.heads[name])
@@ -275,7 +228,8 @@ def build_graph(net: ProgressiveNet) -> nx.DiGraph:
                    task=name, mode=t.mode, classes=t.classes, label=f"head {name}",
                    op="dense", in_shape=[net.columns[t.column].out_features],
                    out_shape=[t.classes], params=params, buffers=buffers,
-                   macs=_sum_under(macs, f"heads.{name}"), **state_of(part))
+                   macs=layer_macs(net.heads[name], (net.columns[t.column].out_features,)),
+                   **state_of(part))
         G.add_edge(last[t.column], node, role="forward", kind="forward",
                    shape=[net.columns[t.column].out_features])
     for key, a in net.adapter_info.items():
@@ -284,12 +238,12 @@ def build_graph(net: ProgressiveNet) -> nx.DiGraph:
         part = f"adapter:{key}"
         task = a.head if a.head is not None else net.column_info[a.column].task
         figures = {"kind": a.kind, "state": a.state, "params": params,
-                   "macs": _sum_under(macs, f"adapters.{key}"), "usage": _usage(net, key, task),
+                   "macs": module_macs(module, ()) if module is not None else 0,
+                   "usage": _usage(net, key, task),
                    "source": a.source, "target": a.target, "column": a.column,
                    "block": a.block, "head": a.head, **state_of(part)}
         G.graph["adapters"][key] = dict(figures)
-        sources = a.extra.get("sources") if isinstance(a.extra, dict) else None
-        sources = [int(s) for s in sources] if isinstance(sources, list) and sources else [a.source]
+        sources = _sources(net, key)
         for n, j in enumerate(sources):
             if a.head is not None:
                 u, v = last[j], f"head_{a.head}"
@@ -301,6 +255,17 @@ def build_graph(net: ProgressiveNet) -> nx.DiGraph:
                 attrs.update(params=0, macs=0)
             _add_lateral(G, u, v, attrs)
     return G
+
+
+def _sources(net: ProgressiveNet, key: str) -> list[int]:
+    """The columns an adapter reads: several for a joint adapter (the result of a merge)."""
+    if key in net.adapters and hasattr(net, "adapter_sources"):
+        return list(net.adapter_sources(key))
+    info = net.adapter_info[key]
+    listed = info.extra.get("sources") if isinstance(info.extra, dict) else None
+    if isinstance(listed, list) and listed:
+        return [int(j) for j in listed]
+    return [info.source]
 
 
 def _add_lateral(G: nx.DiGraph, u: str, v: str, attrs: dict[str, Any]) -> None:

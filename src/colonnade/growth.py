@@ -43,7 +43,7 @@ def grow(net: ProgressiveNet, task: str, data: TaskData, mode: str = "column",
          on: str | None = None, width: float = 1.0, epochs: int | None = None,
          device: str | None = None, progress: bool = True, transform: Transform | None = None,
          cache: bool | None = None, cache_mb: float | None = None,
-         target: float | None = None) -> dict[str, Any]:
+         target: float | None = None, ddp: Any = None) -> dict[str, Any]:
     """Grow ``task`` on ``net`` and train it on ``data``; returns the history entry.
 
     ``mode="auto"`` grows only a head when that reaches ``target`` validation accuracy,
@@ -51,12 +51,13 @@ def grow(net: ProgressiveNet, task: str, data: TaskData, mode: str = "column",
 
     The task's seed is the spec's seed plus the number of tasks before it, so each task
     is reproducible on its own and tasks do not share initial weights. ``transform``,
-    ``cache`` and ``cache_mb`` go to ``fit_task``.
+    ``cache``, ``cache_mb`` and ``ddp`` (data-parallel training, distributed.py) go to
+    ``fit_task``.
     """
     if mode == "auto":
         return _grow_auto(net, task, data, target, on=on, width=width, epochs=epochs,
                           device=device, progress=progress, transform=transform, cache=cache,
-                          cache_mb=cache_mb)
+                          cache_mb=cache_mb, ddp=ddp)
     if target is not None:
         raise UsageError("--target applies to --mode auto only")
     if mode not in ("column", "head"):
@@ -77,7 +78,7 @@ def grow(net: ProgressiveNet, task: str, data: TaskData, mode: str = "column",
         before = transfer.before_training(net, task, parts, data, seed)
         record = fit_task(net, task, data, net.spec.train, epochs=epochs, seed=seed,
                           progress=progress, transform=transform, cache=cache,
-                          cache_mb=cache_mb)
+                          cache_mb=cache_mb, ddp=ddp)
     except BaseException:
         net.remove_task(task)
         raise

@@ -168,8 +168,7 @@ def accuracy_heatmap(tasks: list[str], R: list[list[float | None]]) -> bytes:
         size = max(3.2, 0.7 * n + 1.8)
         fig, ax = plt.subplots(figsize=(size + 1.0, size))
         data = [[math.nan if v is None else float(v) for v in row] for row in R]
-        cmap = plt.get_cmap("viridis").copy()
-        cmap.set_bad("#eeeeee")
+        cmap = plt.get_cmap("viridis").with_extremes(bad="#eeeeee")
         im = ax.imshow(data, cmap=cmap, vmin=0.0, vmax=1.0)
         for i in range(n):
             for j in range(n):

@@ -23,6 +23,7 @@ MAC rate (a lower bound: it ignores memory traffic and elementwise work).
 
 from __future__ import annotations
 
+import copy
 import importlib.util
 import math
 from dataclasses import dataclass, field
@@ -46,7 +47,7 @@ from .spec import Conv1d, Conv2d, Dense, LateralSpec, LayerSpec, Norm, Spec
 __all__ = ["Figures", "layer_figures", "column_figures", "adapter_figures", "head_figures",
            "GrowthRule", "ProjectedTask", "Projection", "project", "Need", "Verdict",
            "verdicts", "first_break", "Option", "price_options", "MAX_PROJECT",
-           "trim_available"]
+           "trim_available", "trimmed_fraction"]
 
 MAX_PROJECT = 256
 
@@ -208,6 +209,12 @@ class Projection:
     tasks: list[ProjectedTask] = field(default_factory=list)
 
 
+def _scaled(f: Figures, keep: float) -> Figures:
+    if keep == 1:
+        return f
+    return Figures(round(f.params * keep), round(f.float_buffers * keep), round(f.macs * keep))
+
+
 def _newest_classes(net: ProgressiveNet, classes: int | None) -> int:
     if classes is not None:
         if classes < 2:
@@ -225,21 +232,29 @@ def _default_width(net: ProgressiveNet) -> float:
 
 def _meta_copy(net: ProgressiveNet, lateral: LateralSpec) -> ProgressiveNet:
     """The network's architecture on the meta device (shapes only, no memory)."""
-    with torch.device("meta"):
-        clone = ProgressiveNet.from_architecture(net.spec, net.architecture())
+    try:
+        with torch.device("meta"):
+            clone = ProgressiveNet.from_architecture(net.spec, net.architecture())
+    except Exception:  # an adapter kind that cannot be rebuilt from the manifest alone
+        clone = copy.deepcopy(net).to("meta")
+        clone.meta, clone.attachments = {"history": [], "records": {}}, {}
     clone.spec = net.spec.model_copy(update={"lateral": lateral})
     return clone
 
 
 def project(net: ProgressiveNet, n: int, width: float | None = None, mode: str = "column",
             classes: int | None = None, lateral: LateralSpec | None = None,
-            base: NetworkCost | None = None) -> Projection:
+            base: NetworkCost | None = None, keep: float = 1.0) -> Projection:
     """Project ``n`` future tasks grown by the spec's rule (or the given what-if).
 
     ``width`` defaults to the newest column's width (the template's, 1.0, when there is
     none), ``classes`` to the newest task's; ``lateral`` replaces the spec's adapter
-    policy for the future columns only (the existing ones keep theirs).
+    policy for the future columns only (the existing ones keep theirs). ``keep`` < 1
+    scales the parameters and MACs of future adapters, for the price of trimming at a
+    measured rate; peak activations are then those of the untrimmed projection.
     """
+    if not 0 <= keep <= 1:
+        raise UsageError(f"keep must be a fraction in [0, 1], got {keep}")
     if not isinstance(n, int) or not 0 <= n <= MAX_PROJECT:
         raise UsageError(f"--project takes a number of future tasks from 0 to {MAX_PROJECT}, "
                          f"got {n}")
@@ -298,6 +313,7 @@ def project(net: ProgressiveNet, n: int, width: float | None = None, mode: str =
             adapters = Figures()
             for j in range(k):
                 adapters += _block_adapters(spec, lat, widths[j], w)
+            adapters = _scaled(adapters, keep)
             head = head_figures(plan_column(spec, w).out_shape[0], c)
             col_fig.append(cf)
             into_fig.append(adapters)
@@ -312,6 +328,7 @@ def project(net: ProgressiveNet, n: int, width: float | None = None, mode: str =
         head_adapters = Figures()
         for j in range(carrier):
             head_adapters += _head_adapter(spec, lat, widths[j], c)
+        head_adapters = _scaled(head_adapters, keep)
         added = cf + adapters + head + head_adapters
         closure = range(carrier + 1) if lat.kind != "none" else [carrier]
         path_cols = sum((col_fig[j] for j in closure), Figures())
@@ -396,10 +413,31 @@ class Option:
 
     name: str
     what: str
-    status: str  # "available", "pending" (needs a feature not yet in colonnade), "bound"
+    status: str  # "available"; "pending" (needs a feature not in colonnade); "bound" (no
+    # measurement yet, so the figure is the most the option could give)
     first_break: str | None  # the first task that still breaks, None if all fit
     last: Need | None  # what the last projected task needs under this option
     note: str = ""
+
+
+def trimmed_fraction(net: ProgressiveNet, base: NetworkCost) -> float | None:
+    """The share of lateral parameters past trims removed from the tasks they trimmed.
+
+    From the history's ``adapter_pruned`` and ``adapters_merged`` steps (written by
+    trim, each with the adapter parameters it saved), over the trimmed tasks' adapters
+    before trimming (still live plus saved). None when no task has been trimmed.
+    """
+    saved: dict[str, int] = {}
+    for step in net.meta.get("history") or []:
+        if isinstance(step, dict) and step.get("step") in ("adapter_pruned", "adapters_merged"):
+            task = step.get("task")
+            saved[task] = saved.get(task, 0) + int(step.get("params_saved") or 0)
+    left = {t.task: t.added.adapters for t in base.tasks}
+    total_saved = sum(v for t, v in saved.items() if t in left)
+    before = sum(left[t] + v for t, v in saved.items() if t in left)
+    if total_saved <= 0 or before <= 0:
+        return None
+    return min(1.0, total_saved / before)
 
 
 def trim_available() -> bool:
@@ -430,14 +468,27 @@ def price_options(net: ProgressiveNet, base: NetworkCost, n: int, profile: Hardw
     if net.columns:
         options.append(run("head only", "grow future tasks as heads on the newest column "
                            "(no new column; accuracy not projected)", mode="head"))
-    status = "available" if trim_available() else "pending"
-    note = ("bound: no future adapters at all; real trimming keeps the useful ones"
-            if status == "available" else
-            "trimming adapters is pending until the trim feature lands; this is its bound: "
-            "future columns with no lateral adapters at all")
-    options.append(run("trim adapters", "drop the lateral adapters of future columns",
-                       status=status, note=note, width=w,
-                       lateral=net.spec.lateral.model_copy(update={"kind": "none"})))
+    none = net.spec.lateral.model_copy(update={"kind": "none"})
+    rate = trimmed_fraction(net, base)
+    if not trim_available():
+        options.append(run("trim adapters", "drop the lateral adapters of future columns",
+                           status="pending", width=w, lateral=none,
+                           note="trimming adapters is pending until the trim feature "
+                                "lands; this is its bound: future columns with no lateral "
+                                "adapters at all"))
+    elif rate is None:
+        options.append(run("trim adapters", "trim the lateral adapters of future columns",
+                           status="bound", width=w, lateral=none,
+                           note="no task has been trimmed yet, so this is the bound (no "
+                                "future adapters at all); run 'colonnade trim' on a task to "
+                                "measure what trimming saves here"))
+    else:
+        options.append(run("trim adapters", f"trim future adapters as past trims did "
+                           f"(they removed {rate:.0%} of the lateral parameters)",
+                           status="available", width=w, keep=1.0 - rate,
+                           note="parameters and MACs of future adapters scaled by the "
+                                "measured rate; earlier columns stay on the path and peak "
+                                "activations are as untrimmed, so this errs high"))
     for dtype in ("fp16", "int8"):
         if DTYPE_BYTES[dtype] < DTYPE_BYTES[profile.dtype]:
             options.append(run(f"dtype {dtype}", f"deploy at {dtype} instead of "

@@ -32,7 +32,7 @@ from .fit import evaluate, fit_task
 from .merge import fit_joint, install_joint, uninstall_joint
 from .network import ProgressiveNet
 from .store import load, now, save
-from .usage import ablation_scores, measure, record_usage, task_adapters
+from .usage import ablation_scores, adapter_means, measure, record_usage, task_adapters
 
 __all__ = ["TrimStep", "TrimReport", "trim", "trim_workspace", "owned_adapters",
            "refuse_sealed"]
@@ -185,10 +185,28 @@ def _set_order(net: ProgressiveNet, modules: dict[str, torch.nn.Module], order: 
             net.adapters[k] = m
 
 
+def _fold_targets(net: ProgressiveNet, task: str) -> dict[str, tuple[str, torch.nn.Module]]:
+    """Layers whose bias may take a pruned adapter's mean: layer -> (part, weighted layer).
+
+    Only layers of parts no other task depends on, and only layers with a bias.
+    """
+    info = net.task(task)
+    dependents = _dependents(net, task)
+    out: dict[str, tuple[str, torch.nn.Module]] = {}
+    if getattr(net.heads[task], "bias", None) is not None:
+        out["head"] = (f"head:{task}", net.heads[task])
+    column = f"column:{info.column}"
+    if column not in dependents:
+        for b, block in enumerate(net.columns[info.column].blocks):
+            if getattr(block.weighted, "bias", None) is not None:
+                out[f"block {b}"] = (column, block.weighted)
+    return out
+
+
 class _Editor:
     """Prunes adapters in memory and can put everything back exactly (on failure)."""
 
-    def __init__(self, net: ProgressiveNet, task: str, finetune_parts: list[str]) -> None:
+    def __init__(self, net: ProgressiveNet, task: str, parts: list[str]) -> None:
         self.net = net
         self.order = list(net.adapters.keys())
         self.modules = dict(net.adapters.items())
@@ -196,16 +214,28 @@ class _Editor:
         self.meta = copy.deepcopy(net.meta)
         owned = dict(net.part_modules())
         self.state = {part: {k: v.detach().clone() for k, v in owned[part].state_dict().items()}
-                      for part in finetune_parts}
+                      for part in dict.fromkeys(parts)}
+        self.biases: dict[str, tuple[torch.nn.Module, torch.Tensor]] = {}
 
-    def prune(self, key: str) -> torch.nn.Module:
+    def prune(self, key: str, fold: tuple[torch.nn.Module, torch.Tensor] | None = None,
+              ) -> torch.nn.Module:
+        """Remove an adapter; with ``fold`` = (layer, mean), add its mean to the bias."""
         module = self.net.adapters[key]
+        if fold is not None:
+            layer, mean = fold
+            self.biases[key] = (layer, layer.bias.detach().clone())
+            with torch.no_grad():
+                layer.bias.add_(mean.to(layer.bias.dtype).to(layer.bias.device))
         self.net.adapter_info[key].state = "pruned"
         del self.net.adapters[key]
         self.net._reindex()
         return module
 
     def unprune(self, key: str, module: torch.nn.Module) -> None:
+        if key in self.biases:
+            layer, bias = self.biases.pop(key)
+            with torch.no_grad():
+                layer.bias.copy_(bias)
         self.net.adapter_info[key].state = "live"
         current = dict(self.net.adapters.items())
         current[key] = module
@@ -251,24 +281,33 @@ def _within(acc: float, report: TrimReport) -> bool:
 
 
 def _prune_pass(net: ProgressiveNet, editor: _Editor, report: TrimReport, owned: list[str],
-                x: torch.Tensor, y: torch.Tensor, tune: _Tuner | None = None) -> None:
-    """Remove adapters, cheapest first by ablation, while within tolerance.
+                x: torch.Tensor, y: torch.Tensor, folds: dict[str, tuple[str, torch.nn.Module]],
+                tune: _Tuner | None = None) -> None:
+    """Remove adapters, cheapest first by (mean) ablation, while within tolerance.
 
     Each round re-scores the live adapters and removes the cheapest one that keeps the
-    task within tolerance. When none does and fine-tuning is on, the cheapest is removed
-    anyway and the task's own parts fine-tuned; that is kept only if it is back within
-    tolerance, else both are undone and trimming stops.
+    task within tolerance; where the target layer is the task's own, the adapter's mean
+    output on the data goes into that layer's bias. When none fits and fine-tuning is on,
+    the cheapest is removed anyway and the task's own parts fine-tuned; that is kept only
+    if it is back within tolerance, else both are undone and trimming stops.
     """
+    layer_of = {k: layer for k, layer, _ in task_adapters(net, report.task)}
     while not _target_met(report, net):
         live = [k for k in owned if k in net.adapters]
         if not live:
             return
-        _, scores = ablation_scores(net, report.task, x, y, live)
+        means = adapter_means(net, report.task, x, [k for k in live if layer_of[k] in folds])
+        _, scores = ablation_scores(net, report.task, x, y, live, means)
+
+        def fold(key: str, means: dict[str, torch.Tensor] = means,
+                 ) -> tuple[torch.nn.Module, torch.Tensor] | None:
+            return (folds[layer_of[key]][1], means[key]) if key in means else None
+
         order = sorted(live, key=lambda k: (scores[k][1], scores[k][0], k))
         accepted = False
         for key in order:
-            step = _pruned_step(net, key, scores[key])
-            module = editor.prune(key)
+            step = _pruned_step(net, key, scores[key], key in means)
+            module = editor.prune(key, fold(key))
             acc, loss = evaluate(net, report.task, x, y)
             if _within(acc, report):
                 step.accuracy, step.loss = acc, loss
@@ -281,8 +320,8 @@ def _prune_pass(net: ProgressiveNet, editor: _Editor, report: TrimReport, owned:
         if tune is None:
             return
         key = order[0]
-        step = _pruned_step(net, key, scores[key])
-        module = editor.prune(key)
+        step = _pruned_step(net, key, scores[key], key in means)
+        module = editor.prune(key, fold(key))
         saved = tune.snapshot()
         acc, loss = tune.run()
         if not _within(acc, report):
@@ -296,12 +335,14 @@ def _prune_pass(net: ProgressiveNet, editor: _Editor, report: TrimReport, owned:
             "epochs": tune.epochs, "parts": tune.live(), "after_pruning": key}))
 
 
-def _pruned_step(net: ProgressiveNet, key: str, score: tuple[float, float]) -> TrimStep:
+def _pruned_step(net: ProgressiveNet, key: str, score: tuple[float, float], folded: bool,
+                 ) -> TrimStep:
     info, module = net.adapter_info[key], net.adapters[key]
     return TrimStep("adapter_pruned", [key], math.nan, math.nan, _param_count(module),
                     costs.adapter_macs(module),
                     {"sources": list(info.sources), "target": info.target,
-                     "ablation_loss_rise": score[1], "ablation_accuracy_drop": score[0]})
+                     "mean_folded_into_bias": folded, "score_loss_rise": score[1],
+                     "score_accuracy_drop": score[0]})
 
 
 class _Tuner:
@@ -358,7 +399,7 @@ def _merge_pass(net: ProgressiveNet, report: TrimReport, owned: list[str],
             continue
         macs_before = sum(costs.adapter_macs(net.adapters[k]) for k in keys)
 
-        def trial(rank: int) -> tuple[float, float]:
+        def trial(rank: int, fit=fit) -> tuple[float, float]:  # noqa: ANN001
             _, undo = install_joint(net, fit, rank)
             try:
                 return evaluate(net, report.task, x, y)
@@ -420,6 +461,8 @@ def trim(net: ProgressiveNet, task: str, data: TaskData, max_drop: float = 0.5,
 
     guard(net, [f"adapter:{k}" for k in owned], "trim")
     parts = _own_parts(net, task) if finetune else []
+    folds = _fold_targets(net, task)
+    guard(net, [part for part, _ in folds.values()], "trim")
     acc0, loss0 = evaluate(net, task, x, y)
     params0, macs0 = _path_cost(net, task)
     target = ({"params": target_params} if target_params is not None else
@@ -429,10 +472,10 @@ def trim(net: ProgressiveNet, task: str, data: TaskData, max_drop: float = 0.5,
                         lateral_params_before=_lateral_params(net, task),
                         columns_before=list(net.closure(task).columns), target=target,
                         kept=kept)
-    editor = _Editor(net, task, parts)
+    editor = _Editor(net, task, parts + [part for part, _ in folds.values()])
     tune = _Tuner(net, task, parts, train, finetune, x, y, progress) if finetune else None
     try:
-        _prune_pass(net, editor, report, owned, x, y, tune)
+        _prune_pass(net, editor, report, owned, x, y, folds, tune)
         if merge:
             _merge_pass(net, report, owned, x, y)
         report.accuracy_after, report.loss_after = evaluate(net, task, x, y)
@@ -451,8 +494,11 @@ def trim(net: ProgressiveNet, task: str, data: TaskData, max_drop: float = 0.5,
 def _why_stopped(report: TrimReport, owned: list[str], net: ProgressiveNet) -> str:
     if report.target_met:
         return "the target was reached"
-    if not any(k in net.adapters for k in owned):
-        return "every adapter only this task uses was removed"
+    left = [k for k, _, _ in task_adapters(net, report.task)]
+    if not left:
+        return "no lateral adapter feeds the task any more"
+    if not owned_adapters(net, report.task)[0]:
+        return "every adapter left is shared with another task"
     return (f"removing any further adapter would lose more than {report.max_drop:g} "
             f"accuracy points")
 

@@ -7,10 +7,15 @@ much performance drops. colonnade scores every live adapter into the task's colu
 blocks and into its head three ways:
 
 * **ablation**: the change of accuracy and of mean cross-entropy when that adapter's
-  output is replaced by zeros (what pruning it would cost, before any fine-tuning);
+  output is replaced by zeros, and **mean ablation**, by its mean over the data per
+  output channel (what pruning costs when that mean is folded into the target layer's
+  bias, which ``trim`` does where it may);
 * **contribution share**: the mean over samples of ||adapter output|| / ||whole
   pre-activation||, the pre-activation being the target layer's weighted output (its
-  bias included) plus every lateral into it;
+  bias included) plus every lateral into it; and the **varying share**, the same ratio
+  after removing each term's mean over the data, because a constant offset acts like a
+  bias and carries nothing about the input (on digits, an unrelated column's adapter
+  had the larger raw share through its offset alone, and the smaller varying share);
 * **perturbation**, in the spirit of APS: Gaussian noise with each input feature's
   (channel's) variance on the data, times ``noise``, is added to the adapter's input
   only, so the source column's own path is untouched; we report the accuracy drop and
@@ -20,7 +25,7 @@ blocks and into its head three ways:
 
 Everything runs through forward hooks that exist only while a score is measured, so
 the network's own computation is untouched (the tests check bit-identical logits).
-``score`` (the ablation loss rise) orders adapters for pruning.
+``score`` (the mean-ablation loss rise) orders adapters for pruning.
 """
 
 from __future__ import annotations
@@ -44,7 +49,7 @@ from .network import ProgressiveNet
 from .store import atomic_write, load, now, save
 
 __all__ = ["AdapterUsage", "UsageReport", "task_adapters", "measure", "ablation_scores",
-           "record_usage", "plot_usage", "usage_workspace", "PLOT_FORMATS"]
+           "adapter_means", "record_usage", "plot_usage", "usage_workspace", "PLOT_FORMATS"]
 
 PLOT_FORMATS = ("png", "svg", "pdf")
 
@@ -61,15 +66,18 @@ class AdapterUsage:
     params: int
     ablation_accuracy_drop: float = 0.0
     ablation_loss_rise: float = 0.0
+    mean_ablation_accuracy_drop: float = 0.0
+    mean_ablation_loss_rise: float = 0.0
     share: float = 0.0
+    varying_share: float = 0.0
     perturb_accuracy_drop: float = 0.0
     perturb_loss_rise: float = 0.0
     aps: float = 0.0
 
     @property
     def score(self) -> float:
-        """What removing the adapter costs in loss: the pruning order, lowest first."""
-        return self.ablation_loss_rise
+        """What pruning costs in loss, its mean kept as a bias: the order, lowest first."""
+        return self.mean_ablation_loss_rise
 
     def to_dict(self) -> dict[str, Any]:
         return {**asdict(self), "score": self.score}
@@ -147,6 +155,38 @@ def _zero_output(module: torch.nn.Module, inputs: Any, output: torch.Tensor) -> 
     return torch.zeros_like(output)
 
 
+def _constant_output(mean: torch.Tensor) -> Callable[..., torch.Tensor]:
+    def hook(module: torch.nn.Module, inputs: Any, output: torch.Tensor) -> torch.Tensor:
+        shape = [1] * output.dim()
+        shape[1] = output.shape[1]
+        return mean.to(output.dtype).reshape(shape).expand_as(output).to(output.device)
+    return hook
+
+
+@torch.no_grad()
+def adapter_means(net: ProgressiveNet, task: str, x: torch.Tensor, keys: list[str],
+                  ) -> dict[str, torch.Tensor]:
+    """Each adapter's mean output per channel (over samples and positions), float64.
+
+    A per-channel constant is exactly what the target layer's bias can carry.
+    """
+    sums: dict[str, torch.Tensor] = {}
+    counts: dict[str, int] = {}
+
+    def grab(key: str):
+        def hook(module, inputs, output):
+            o = output.detach().double()
+            dims = [d for d in range(o.dim()) if d != 1]
+            sums[key] = sums[key] + o.sum(dims) if key in sums else o.sum(dims)
+            counts[key] = counts.get(key, 0) + o.numel() // o.shape[1]
+        return hook
+
+    with _hooks([lambda m=net.adapters[k], k=k: m.register_forward_hook(grab(k))
+                 for k in keys]):
+        _run(net, task, x, torch.zeros(x.shape[0], dtype=torch.int64))
+    return {k: (sums[k] / counts[k]).cpu() for k in keys}
+
+
 def _check_data(net: ProgressiveNet, task: str, x: torch.Tensor, y: torch.Tensor) -> None:
     if x.shape[0] == 0:
         raise DataError("the usage data holds no samples")
@@ -157,15 +197,19 @@ def _check_data(net: ProgressiveNet, task: str, x: torch.Tensor, y: torch.Tensor
 
 # ----------------------------------------------------------------------------- scores
 def ablation_scores(net: ProgressiveNet, task: str, x: torch.Tensor, y: torch.Tensor,
-                    keys: list[str] | None = None) -> tuple[tuple[float, float],
-                                                            dict[str, tuple[float, float]]]:
-    """Baseline (accuracy, loss) and, per adapter, (accuracy drop, loss rise) when zeroed."""
+                    keys: list[str] | None = None,
+                    means: dict[str, torch.Tensor] | None = None,
+                    ) -> tuple[tuple[float, float], dict[str, tuple[float, float]]]:
+    """Baseline (accuracy, loss) and, per adapter, (accuracy drop, loss rise) when its
+    output is zeroed, or, for keys in ``means``, replaced by that per-channel mean."""
     _check_data(net, task, x, y)
     keys = [k for k, _, _ in task_adapters(net, task)] if keys is None else keys
+    means = means or {}
     acc, loss = _run(net, task, x, y)
     out = {}
     for key in keys:
-        with _hooks([lambda m=net.adapters[key]: m.register_forward_hook(_zero_output)]):
+        hook = _constant_output(means[key]) if key in means else _zero_output
+        with _hooks([lambda m=net.adapters[key], f=hook: m.register_forward_hook(f)]):
             a, lo = _run(net, task, x, y)
         out[key] = (acc - a, lo - loss)
     return (acc, loss), out
@@ -185,20 +229,23 @@ def measure(net: ProgressiveNet, task: str, x: torch.Tensor, y: torch.Tensor,
         report.accuracy, report.loss = _run(net, task, x, y)
         return report
 
-    # One clean pass: adapter outputs and inputs, and each target's weighted output.
+    # Two clean passes with hooks that only look: the first takes the mean output of
+    # every adapter and target layer and each adapter input's moments, the second the
+    # per-sample shares, raw and with those means removed.
     info = net.task(task)
-    outputs: dict[str, torch.Tensor] = {}
-    weighted: dict[str, torch.Tensor] = {}
-    moments: dict[str, list[torch.Tensor]] = {}
-    counts: dict[str, int] = {}
-    share_sum: dict[str, float] = {k: 0.0 for k, _, _ in feeding}
     targets: dict[str, list[str]] = {}
     for key, layer, _ in feeding:
         targets.setdefault(layer, []).append(key)
+    outputs: dict[str, torch.Tensor] = {}  # this batch: adapter key or layer -> output
+    sums: dict[str, torch.Tensor] = {}
+    moments: dict[str, list[torch.Tensor]] = {}
+    counts: dict[str, int] = {}
+    share_sum = {k: 0.0 for k, _, _ in feeding}
+    varying_sum = {k: 0.0 for k, _, _ in feeding}
 
-    def keep_out(key: str, store: dict[str, torch.Tensor]):
+    def keep_out(name: str):
         def hook(module, inputs, output):
-            store[key] = output.detach()
+            outputs[name] = output.detach().double()
         return hook
 
     def keep_moments(key: str):
@@ -214,39 +261,56 @@ def measure(net: ProgressiveNet, task: str, x: torch.Tensor, y: torch.Tensor,
             counts[key] = counts.get(key, 0) + h.numel() // h.shape[1]
         return hook
 
-    def after_batch() -> None:
-        for layer, keys in targets.items():
-            z = weighted[layer] + sum(outputs[k] for k in keys)
-            zn = z.flatten(1).double().norm(dim=1).clamp_min(1e-30)
-            for k in keys:
-                share_sum[k] += float((outputs[k].flatten(1).double().norm(dim=1) / zn).sum())
+    def add_sums() -> None:
+        for name, out in outputs.items():
+            total = out.sum(0)
+            sums[name] = sums[name] + total if name in sums else total
 
-    regs: list[Callable[[], Any]] = []
+    def add_shares() -> None:
+        n = report.samples
+        for layer, keys in targets.items():
+            z = outputs[layer] + sum(outputs[k] for k in keys)
+            z_mean = (sums[layer] + sum(sums[k] for k in keys)) / n
+            zn = z.flatten(1).norm(dim=1).clamp_min(1e-300)
+            zc = (z - z_mean).flatten(1).norm(dim=1).clamp_min(1e-300)
+            for k in keys:
+                o = outputs[k]
+                share_sum[k] += float((o.flatten(1).norm(dim=1) / zn).sum())
+                varying_sum[k] += float(((o - sums[k] / n).flatten(1).norm(dim=1) / zc).sum())
+
+    looks: list[Callable[[], Any]] = []
     for key, _, _ in feeding:
-        m = net.adapters[key]
-        regs.append(lambda m=m, key=key: m.register_forward_hook(keep_out(key, outputs)))
-        regs.append(lambda m=m, key=key: m.register_forward_pre_hook(keep_moments(key)))
-    for layer, keys in targets.items():
+        looks.append(lambda m=net.adapters[key], key=key: m.register_forward_hook(keep_out(key)))
+    for layer in targets:
         if layer == "head":
             target_module = net.heads[task]
         else:
             target_module = net.columns[info.column].blocks[int(layer.split()[1])].weighted
-        regs.append(lambda m=target_module, layer=layer:
-                    m.register_forward_hook(keep_out(layer, weighted)))
-    with _hooks(regs):
-        report.accuracy, report.loss = _run(net, task, x, y, after_batch)
+        looks.append(lambda m=target_module, layer=layer: m.register_forward_hook(
+            keep_out(layer)))
+    moment_hooks = [lambda m=net.adapters[key], key=key: m.register_forward_pre_hook(
+        keep_moments(key)) for key, _, _ in feeding]
+    with _hooks(looks + moment_hooks):
+        report.accuracy, report.loss = _run(net, task, x, y, add_sums)
+    with _hooks(looks):
+        _run(net, task, x, y, add_shares)
 
     scores = {}
     for key, layer, _ in feeding:
         a = net.adapter_info[key]
         scores[key] = AdapterUsage(key, a.kind, list(net.adapter_sources(key)), a.target,
                                    layer, sum(p.numel() for p in net.adapters[key].parameters()),
-                                   share=share_sum[key] / report.samples)
+                                   share=share_sum[key] / report.samples,
+                                   varying_share=varying_sum[key] / report.samples)
 
     # Ablation: the adapter's output replaced by zeros.
-    _, ablated = ablation_scores(net, task, x, y, [k for k, _, _ in feeding])
+    keys = [k for k, _, _ in feeding]
+    _, ablated = ablation_scores(net, task, x, y, keys)
     for key, (da, dl) in ablated.items():
         scores[key].ablation_accuracy_drop, scores[key].ablation_loss_rise = da, dl
+    _, ablated = ablation_scores(net, task, x, y, keys, adapter_means(net, task, x, keys))
+    for key, (da, dl) in ablated.items():
+        scores[key].mean_ablation_accuracy_drop, scores[key].mean_ablation_loss_rise = da, dl
 
     # Perturbation: noise scaled to each input feature's variance on the data.
     gen = torch.Generator().manual_seed(seed)
@@ -296,8 +360,10 @@ def record_usage(net: ProgressiveNet, report: UsageReport) -> None:
     for a in report.adapters:
         net.adapter_info[a.key].extra["usage"] = {
             "task": report.task, "time": when, "score": a.score, "share": a.share,
+            "varying_share": a.varying_share,
             "ablation_accuracy_drop": a.ablation_accuracy_drop,
-            "ablation_loss_rise": a.ablation_loss_rise, "aps": a.aps,
+            "ablation_loss_rise": a.ablation_loss_rise,
+            "mean_ablation_loss_rise": a.mean_ablation_loss_rise, "aps": a.aps,
             "perturb_loss_rise": a.perturb_loss_rise}
 
 
@@ -308,7 +374,11 @@ def _source_label(sources: list[int]) -> str:
 
 
 def plot_usage(report: UsageReport, path: str | Path) -> None:
-    """A heat map of contribution share, source column against layer, written atomically."""
+    """A heat map of APS, source column against layer, written atomically.
+
+    APS is normalised over the adapters into each layer, as in the paper's analysis, so
+    layers compare; each cell also shows the varying share and the ablation loss rise.
+    """
     import matplotlib
 
     matplotlib.use("Agg")
@@ -322,20 +392,22 @@ def plot_usage(report: UsageReport, path: str | Path) -> None:
                   key=lambda s: (s == "head", int(s.split()[1]) if s != "head" else 0))
     grid = torch.full((len(rows), len(cols)), float("nan"))
     for a in report.adapters:
-        grid[rows.index(_source_label(a.sources)), cols.index(a.layer)] = a.share
-    fig, ax = plt.subplots(figsize=(1.6 + 1.3 * max(len(cols), 1), 1.2 + 0.6 * max(len(rows), 1)))
+        grid[rows.index(_source_label(a.sources)), cols.index(a.layer)] = a.aps
+    fig, ax = plt.subplots(figsize=(3.2 + 1.5 * len(cols), 1.8 + 0.8 * len(rows)))
     try:
-        image = ax.imshow(grid.numpy(), cmap="viridis", vmin=0.0, aspect="auto")
+        image = ax.imshow(grid.numpy(), cmap="viridis", vmin=0.0, vmax=1.0, aspect="auto")
         ax.set_xticks(range(len(cols)), cols)
         ax.set_yticks(range(len(rows)), rows)
-        ax.set_xlabel(f"layer of task {report.task!r}")
+        ax.set_xlabel(f"target layer of task {report.task!r}")
         ax.set_ylabel("source")
         for a in report.adapters:
             r, c = rows.index(_source_label(a.sources)), cols.index(a.layer)
-            ax.text(c, r, f"{a.share:.2f}\nΔloss {a.ablation_loss_rise:.3f}", ha="center",
-                    va="center", fontsize=7, color="white")
-        fig.colorbar(image, ax=ax, label="contribution share")
-        ax.set_title("lateral adapter use (share of the pre-activation norm)", fontsize=9)
+            ax.text(c, r, f"APS {a.aps:.2f}\nshare {a.varying_share:.2f}\n"
+                          f"score {a.score:+.3f}", ha="center", va="center",
+                    fontsize=7, color="white" if a.aps < 0.6 else "black")
+        fig.colorbar(image, ax=ax, label="perturbation sensitivity (APS)")
+        ax.set_title(f"adapter use, {report.samples} samples\n(APS: Rusu et al. 2016; score: "
+                     f"loss rise, mean-ablated)", fontsize=8)
         fig.tight_layout()
         buf = io.BytesIO()
         fig.savefig(buf, format=fmt)

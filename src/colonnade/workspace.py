@@ -32,8 +32,21 @@ def grow_workspace(folder: str | Path, task: str, train: str | Path, val: str | 
                    classes: int | None = None, epochs: int | None = None,
                    device: str | None = None, progress: bool = True, cache: bool | None = None,
                    cache_mb: float | None = None, target: float | None = None,
-                   ) -> dict[str, Any]:
-    """Grow one task in a workspace from data files; returns the history entry."""
+                   nproc: int | None = None) -> dict[str, Any]:
+    """Grow one task in a workspace from data files; returns the history entry.
+
+    ``nproc`` >= 2 trains data-parallel on this machine; inside a torchrun launch every
+    rank trains data-parallel and rank 0 writes (distributed.py).
+    """
+    from . import distributed
+
+    if nproc is not None or distributed.launched_by_torchrun():
+        request = distributed.GrowRequest(str(folder), task, str(train),
+                                          None if val is None else str(val), mode, on, width,
+                                          classes, epochs, device, cache, cache_mb, target)
+        if nproc is not None:
+            return distributed.grow_distributed(request, nproc, progress=progress)
+        return distributed.run_torchrun_rank(request, progress=progress)
     net = load(folder)
     if task in net.task_info:
         raise UsageError(f"a task named {task!r} exists already in {folder}; choose another "

@@ -1,0 +1,123 @@
+"""Data-parallel growth with torch.distributed: two CPU ranks over loopback (gloo).
+
+Outside references: scikit-learn's bundled digits (a permuted-pixel task), and
+single-process training on the same data as the accuracy yardstick.
+"""
+
+from __future__ import annotations
+
+import shutil
+
+import numpy as np
+import pytest
+import torch
+import yaml
+from conftest import permuted_digit_tasks, snapshot
+
+import colonnade
+from colonnade.distributed import GrowRequest, WorkerFailed, grow_distributed
+from colonnade.fit import evaluate
+from colonnade.seal import seal_workspace
+from colonnade.verify import check_workspace
+from colonnade.workspace import grow_workspace
+
+pytestmark = pytest.mark.skipif(not torch.distributed.is_available(),
+                                reason="this torch build has no torch.distributed")
+
+
+@pytest.fixture(scope="module")
+def sealed_workspace(tmp_path_factory):
+    from conftest import DIGITS_SPEC
+
+    tmp = tmp_path_factory.mktemp("ddp")
+    spec = dict(DIGITS_SPEC, train=dict(DIGITS_SPEC["train"], epochs=12, patience=4))
+    (tmp / "spec.yaml").write_text(yaml.safe_dump(spec))
+    t0, t1 = permuted_digit_tasks(2)
+    for t in (t0, t1):
+        np.savez(tmp / f"{t['name']}.npz", x=t["x"], y=t["y"])
+        np.savez(tmp / f"{t['name']}_test.npz", x=t["x_test"], y=t["y_test"])
+    ws = tmp / "ws"
+    colonnade.create(tmp / "spec.yaml", ws)
+    grow_workspace(ws, "perm0", tmp / "perm0.npz", progress=False)
+    seal_workspace(ws, "perm0", tmp / "perm0_test.npz")
+    return tmp, ws, t1
+
+
+def _copy(src, dst):
+    """A copy of the workspace with its seal's probe file beside it, where the seal looks."""
+    shutil.copytree(src, dst)
+    shutil.copy(src.parent / "perm0_test.npz", dst.parent / "perm0_test.npz")
+    return dst
+
+
+def test_two_ranks_train_a_valid_workspace(sealed_workspace, tmp_path):
+    tmp, ws, t1 = sealed_workspace
+    ddp_ws = _copy(ws, tmp_path / "ddp")
+    one_ws = _copy(ws, tmp_path / "one")
+    entry = grow_distributed(GrowRequest(str(ddp_ws), "perm1", str(tmp / "perm1.npz")), 2)
+    assert entry["distributed"]["ranks"] == 2 and entry["distributed"]["backend"] == "gloo"
+    grow_workspace(one_ws, "perm1", tmp / "perm1.npz", progress=False)
+
+    report = check_workspace(ddp_ws)  # every earlier seal still exact
+    assert report.passed and [t.verdict for t in report.tasks] == ["exact"]
+    x, y = torch.from_numpy(t1["x_test"]), torch.from_numpy(t1["y_test"])
+    acc_ddp, _ = evaluate(colonnade.load(ddp_ws), "perm1", x, y)
+    acc_one, _ = evaluate(colonnade.load(one_ws), "perm1", x, y)
+    assert acc_ddp >= 0.9
+    assert abs(acc_ddp - acc_one) <= 0.01, (acc_ddp, acc_one)
+
+
+def test_a_killed_rank_leaves_the_workspace_unchanged(sealed_workspace, tmp_path,
+                                                      monkeypatch):
+    tmp, ws, _ = sealed_workspace
+    work = _copy(ws, tmp_path / "ws")
+    before = snapshot(work)
+    monkeypatch.setenv("COLONNADE_FAULT_KILL", "1:2")  # rank 1 SIGKILLs itself in epoch 2
+    with pytest.raises(WorkerFailed) as err:
+        grow_distributed(GrowRequest(str(work), "perm1", str(tmp / "perm1.npz")), 2)
+    message = str(err.value)
+    assert "rank 1" in message and "SIGKILL" in message and "unchanged" in message
+    assert snapshot(work) == before
+    assert not any(p.name.startswith(".colonnade-ddp-") for p in tmp_path.iterdir())
+
+
+def test_cli_reports_a_killed_rank_in_one_sentence(sealed_workspace, tmp_path, monkeypatch,
+                                                   capsys):
+    from colonnade.cli import main
+
+    tmp, ws, _ = sealed_workspace
+    work = _copy(ws, tmp_path / "ws")
+    before = snapshot(work)
+    monkeypatch.setenv("COLONNADE_FAULT_KILL", "0:1")
+    code = main(["grow", str(work), "--task", "perm1", "--train", str(tmp / "perm1.npz"),
+                 "--nproc", "2", "--quiet"])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 1 and len(err) == 1 and "worker rank 0 stopped" in err[0], err
+    assert snapshot(work) == before
+
+
+def test_bad_nproc(sealed_workspace):
+    _, ws, _ = sealed_workspace
+    with pytest.raises(colonnade.UsageError, match="at least 2"):
+        grow_distributed(GrowRequest(str(ws), "perm1", "x.npz"), 1)
+
+
+def test_torchrun_launch_gives_the_same_model_as_nproc(sealed_workspace, tmp_path):
+    # torch's own launcher (torchrun --standalone), as the README shows for several
+    # machines; rank 0 writes. Same shards and seeds as --nproc 2, so the same weights.
+    import subprocess
+    import sys
+
+    tmp, ws, _ = sealed_workspace
+    a, b = _copy(ws, tmp_path / "a"), _copy(ws, tmp_path / "b")
+    grow_distributed(GrowRequest(str(a), "perm1", str(tmp / "perm1.npz")), 2, progress=False)
+    proc = subprocess.run([sys.executable, "-m", "torch.distributed.run", "--standalone",
+                           "--nproc-per-node", "2", "-m", "colonnade", "grow", str(b),
+                           "--task", "perm1", "--train", str(tmp / "perm1.npz"), "--quiet"],
+                          capture_output=True, text=True, timeout=300)
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    assert proc.stdout.count("grew task 'perm1'") == 1  # rank 0 alone reports
+    na, nb = colonnade.load(a), colonnade.load(b)
+    sa, sb = na.state_dict(), nb.state_dict()
+    assert sa.keys() == sb.keys()
+    assert all(torch.equal(sa[k], sb[k]) for k in sa)
