@@ -33,7 +33,7 @@ from colonnade.export import (
 from colonnade.spec import parse_spec
 from colonnade.store import create, read_manifest, save
 
-from test_forward_all import CONV1D, CONV2D, DENSE, grown, trimmed
+from test_forward_all import CONV1D, CONV2D, DENSE, VARIANTS, grown, trimmed
 
 SPECS = {"dense": DENSE, "conv1d": CONV1D, "conv2d": CONV2D}
 STANDALONE = Path(__file__).resolve().parents[1] / "src" / "colonnade" / "standalone.py"
@@ -43,14 +43,10 @@ def _x(net, n=29, seed=5):
     return torch.randn(n, *net.input_shape, generator=torch.Generator().manual_seed(seed))
 
 
-def _net(kind, trim):
-    return trimmed(SPECS[kind]) if trim else grown(SPECS[kind])
-
-
 @pytest.mark.parametrize("kind", sorted(SPECS))
-@pytest.mark.parametrize("trim", [False, True], ids=["untrimmed", "trimmed"])
-def test_torch_file_is_bit_identical_and_holds_only_the_closure(kind, trim, tmp_path):
-    net = _net(kind, trim)
+@pytest.mark.parametrize("variant", sorted(VARIANTS))
+def test_torch_file_is_bit_identical_and_holds_only_the_closure(kind, variant, tmp_path):
+    net = VARIANTS[variant](SPECS[kind])
     x = _x(net)
     for task in net.tasks:
         path = tmp_path / f"{task}.pt"
@@ -69,7 +65,7 @@ def test_torch_file_is_bit_identical_and_holds_only_the_closure(kind, trim, tmp_
         assert stored == sum(t.numel() * t.element_size() for t in closure.values())
         assert blob["meta"]["closure_sha256"] == closure_digests(closure)[0]
         assert blob["input_shape"] == list(net.input_shape)
-    if trim:  # task c's closure skips column 1: no tensor of it in c's file
+    if variant == "pruned":  # task c's closure skips column 1: no tensor of it in c's file
         blob = torch.load(tmp_path / "c.pt", weights_only=True)
         assert not any(k.startswith(("columns.1.", "heads.b.")) or "_from_c1" in k
                        for k in blob["state"])
@@ -101,8 +97,9 @@ def test_loader_runs_with_torch_alone(tmp_path):
 
 
 @pytest.mark.parametrize("kind", sorted(SPECS))
-def test_onnx_agrees_within_1e5_in_onnxruntime(kind):
-    net = _net(kind, trim=True)
+@pytest.mark.parametrize("variant", ["pruned", "merged"])
+def test_onnx_agrees_within_1e5_in_onnxruntime(kind, variant):
+    net = VARIANTS[variant](SPECS[kind])
     x = _x(net, n=17)
     for task in net.tasks:
         blob = standalone_blob(net, task)

@@ -2,8 +2,9 @@
 
 References: each task's own forward (``torch.equal``), and for a dense network a plain
 re-computation with torch.nn.functional from the state dict, written here apart from
-network.py. Trimming uses the shared mechanism: an adapter's state set to 'pruned', the
-module deleted, ``_reindex()``.
+network.py. Trimming uses the shared mechanisms: an adapter's state set to 'pruned', the
+module deleted, ``_reindex()``; and merge.py's joint adapter replacing the adapters into
+one layer.
 """
 
 from __future__ import annotations
@@ -70,10 +71,28 @@ def trimmed(raw: dict) -> ProgressiveNet:
     return net
 
 
+def merged(raw: dict) -> ProgressiveNet:
+    """Column 2's block-1 adapters (from columns 0 and 1) folded into one joint adapter
+    (merge.py) that reads both columns concatenated."""
+    from colonnade.merge import fit_joint, install_joint
+
+    net = grown(raw)
+    keys = [k for k, a in net.adapter_info.items()
+            if a.state == "live" and a.column == 2 and a.block == 1]
+    x = torch.randn(64, *net.input_shape, generator=torch.Generator().manual_seed(11))
+    fit = fit_joint(net, "c", keys, x)
+    install_joint(net, fit, max(1, fit.full_rank // 2))
+    assert any(len(net.adapter_sources(k)) == 2 for k in net.closure("c").adapters)
+    return net
+
+
+VARIANTS = {"untrimmed": grown, "pruned": trimmed, "merged": merged}
+
+
 @pytest.mark.parametrize("kind", sorted(SPECS))
-@pytest.mark.parametrize("trim", [False, True], ids=["untrimmed", "trimmed"])
-def test_forward_all_equals_each_task_forward(kind, trim):
-    net = trimmed(SPECS[kind]) if trim else grown(SPECS[kind])
+@pytest.mark.parametrize("variant", sorted(VARIANTS))
+def test_forward_all_equals_each_task_forward(kind, variant):
+    net = VARIANTS[variant](SPECS[kind])
     x = torch.randn(33, *net.input_shape, generator=torch.Generator().manual_seed(7))
     with torch.no_grad():
         every = net.forward_all(x)

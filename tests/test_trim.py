@@ -268,6 +268,11 @@ def test_trim_merge_is_accepted_within_tolerance_and_reloads(tmp_path):
     # reloaded bit for bit: the joint adapter is rebuilt from the manifest
     again = colonnade.load(ws)
     assert torch.equal(task_logits(again, "perm2", x), task_logits(back, "perm2", x))
+    # and a standalone export computes the same logits through its joint adapter
+    export = pytest.importorskip("colonnade.export")
+    model = export.standalone_model(export.standalone_blob(back, "perm2"))
+    with torch.no_grad():
+        assert torch.allclose(model(x), task_logits(back, "perm2", x), atol=1e-5)
 
 
 # ----------------------------------------------------------------------------- trust
@@ -338,6 +343,7 @@ def test_an_interrupted_trim_leaves_workspace_and_network_as_they_were(tmp_path,
     (["--max-drop", "-1"], "max-drop"),
     (["--target-params", "5", "--target-macs", "5"], "not allowed with"),
     (["--finetune", "2"], "--train"),
+    (["--train", "{train}"], "--finetune"),
     (["--task", "nope"], "no task named"),
     (["--task", "perm0"], "nothing to trim"),
 ])
@@ -345,6 +351,7 @@ def test_trim_bad_input_is_one_sentence_and_writes_nothing(tmp_path, capsys, arg
     ws, files = sealed_workspace(tmp_path, ())
     before = snapshot(tmp_path)
     argv = ["trim", str(ws), "--data", files["perm2"][1]]
+    args = [a.replace("{train}", files["perm2"][0]) for a in args]
     argv += args if "--task" in args else ["--task", "perm2", *args]
     try:
         code = main(argv)

@@ -4,10 +4,14 @@ While a new column (or head) trains, the earlier columns it reads have no traina
 tensor and run in eval mode (no dropout, fixed norm statistics), so their block outputs
 on the training rows are the same in every epoch. Computing them once and passing them
 to ``net(x, task=..., given=...)`` leaves each training step with only the new parts'
-forward and backward. Rows are computed in chunks of the training batch size, so every
-matrix product sees as many rows as in uncached training; where the kernels' results do
-not depend on which rows share a batch (true for this project's CPU tests, measured in
-tests/test_cache.py), training with and without the cache gives bit-identical weights.
+forward and backward. Training rows are computed in chunks of the training batch size
+(the last chunk overlaps the one before so that it is full too), so every matrix product
+sees as many rows as a mini-batch does; where the kernels' results do not depend on
+which rows share a batch of that size, training with and without the cache gives
+bit-identical weights. Where they do (on this project's CPU build, for example, a
+Linear layer whose output has only a handful of features), the frozen outputs differ in
+the last bits and the weights within float rounding, amplified by the optimizer;
+tests/test_cache.py measures both cases and the README records the figures.
 
 The cache lives in the network's device memory up to a cap and spills whole arrays to
 numpy memory-mapped files in a temporary folder beyond it; ``close()`` removes them.
@@ -78,10 +82,14 @@ class FrozenActivations:
     every constant closure column maps to its list of block outputs, with ``None`` for
     blocks nothing reads (those columns are then skipped, not recomputed). ``chunk`` is
     how many rows each forward sees; use the batch size of the calls that it replaces.
+    ``full_last``: compute the last chunk as the last ``chunk`` rows, overlapping the one
+    before, so every row is computed in a batch of ``chunk`` rows (for shuffled training
+    batches); without it the chunks are exactly ``x[i:i + chunk]`` (for evaluation).
     """
 
     def __init__(self, net: ProgressiveNet, task: str, x: torch.Tensor, chunk: int,
-                 cap_bytes: int, folder: str | Path | None = None) -> None:
+                 cap_bytes: int, folder: str | Path | None = None,
+                 full_last: bool = False) -> None:
         self.task = task
         self.n = int(x.shape[0])
         self.columns = constant_columns(net, task)
@@ -96,7 +104,7 @@ class FrozenActivations:
         self._disk: dict[tuple[int, int], tuple[np.memmap, torch.dtype, tuple[int, ...]]] = {}
         self._finalizer: weakref.finalize | None = None
         try:
-            self._fill(net, x, chunk, cap_bytes)
+            self._fill(net, x, chunk, cap_bytes, full_last)
         except BaseException:
             self.close()
             raise
@@ -130,17 +138,20 @@ class FrozenActivations:
         array[start:start + value.shape[0]] = raw.view(torch.uint8).numpy()
 
     @torch.no_grad()
-    def _fill(self, net: ProgressiveNet, x: torch.Tensor, chunk: int, cap_bytes: int) -> None:
+    def _fill(self, net: ProgressiveNet, x: torch.Tensor, chunk: int, cap_bytes: int,
+              full_last: bool) -> None:
         was_training = net.training
         net.eval()
         try:
             for start in range(0, self.n, chunk):
-                outs = net.run_columns(x[start:start + chunk].to(self.device), self.columns)
+                stop = min(start + chunk, self.n)
+                first = max(0, stop - chunk) if full_last else start
+                outs = net.run_columns(x[first:stop].to(self.device), self.columns)
                 for k, blocks in self.needed.items():
                     for b in blocks:
                         if start == 0:
                             self._allocate((k, b), outs[k][b], cap_bytes)
-                        self._store((k, b), start, outs[k][b])
+                        self._store((k, b), start, outs[k][b][start - first:])
         finally:
             net.train(was_training)
         for array, _, _ in self._disk.values():
@@ -245,7 +256,8 @@ def frozen_cache(net: ProgressiveNet, task: str, x: torch.Tensor, x_val: torch.T
             cache.notes.append("training rows not cached: the data is transformed per epoch, "
                                "so frozen outputs differ each epoch")
         else:
-            cache.train = FrozenActivations(net, task, x, batch_size, cap, folder)
+            cache.train = FrozenActivations(net, task, x, batch_size, cap, folder,
+                                            full_last=True)
             cap -= cache.train.bytes_in_memory
             cache.notes.append(f"training rows cached: {_describe(cache.train)}")
         if x_val.shape[0]:

@@ -25,7 +25,7 @@ import torch
 import torch.nn as nn
 
 from . import __version__
-from .adapters import LinearAdapter, NonlinearAdapter
+from .adapters import JointAdapter, LinearAdapter, NonlinearAdapter
 from .digest import closure_digests
 from .errors import ColonnadeError, SealedError, UsageError
 from .network import ProgressiveNet
@@ -91,6 +91,8 @@ def _adapter_steps(key: str, module: nn.Module) -> list[dict[str, Any]]:
         order = [("module", "U")]
     elif type(module) is NonlinearAdapter:
         order = [("scale", "alpha"), ("module", "V"), ("module", "act"), ("module", "U")]
+    elif type(module) is JointAdapter:
+        order = [("module", "V"), ("module", "U")]
     elif callable(getattr(module, "export_steps", None)):
         order = list(module.export_steps())
     else:
@@ -120,13 +122,14 @@ def task_architecture(net: ProgressiveNet, task: str) -> dict[str, Any]:
                         "post": [describe_layer(m) for m in b.post]} for b in col.blocks],
         })
         for b in range(len(col.blocks)):
-            for key, source in net.adapters_into_block(k, b):
-                adapters.append({"key": key, "source": source, "column": k, "block": b,
-                                 "head": None,
+            for key, _ in net.adapters_into_block(k, b):
+                adapters.append({"key": key, "sources": list(net.adapter_sources(key)),
+                                 "column": k, "block": b, "head": None,
                                  "steps": _adapter_steps(key, net.adapters[key])})
-    for key, source in net.adapters_into_head(task):
-        adapters.append({"key": key, "source": source, "column": None, "block": None,
-                         "head": task, "steps": _adapter_steps(key, net.adapters[key])})
+    for key, _ in net.adapters_into_head(task):
+        adapters.append({"key": key, "sources": list(net.adapter_sources(key)),
+                         "column": None, "block": None, "head": task,
+                         "steps": _adapter_steps(key, net.adapters[key])})
     return {"task": task, "columns": columns, "adapters": adapters,
             "head": describe_layer(net.heads[task]), "head_column": net.task(task).column}
 

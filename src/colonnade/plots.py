@@ -129,7 +129,9 @@ def projected_growth(series: dict[str, Any]) -> bytes:
         for ax, (key, title, is_bytes) in zip(axes, panels, strict=True):
             values = series[key]
             if n_now:
-                ax.plot(x[:n_now], values[:n_now], "o-", color="#0072B2", label="grown")
+                # above the projected line, so the last grown task keeps its filled marker
+                ax.plot(x[:n_now], values[:n_now], "o-", color="#0072B2", label="grown",
+                        zorder=3)
             if len(x) > n_now:
                 start = max(n_now - 1, 0)
                 ax.plot(x[start:], values[start:], "o--", color="#56B4E9",

@@ -9,9 +9,9 @@ it can be copied next to a service that has nothing but torch installed::
 
 The file is a plain dictionary written by ``torch.save``: ``format``, ``version``,
 ``task``, ``classes``, ``input_shape``, ``architecture`` (plain data naming torch layers
-and their arguments, the column order and each lateral adapter's target), ``state``
-(tensors by the grown network's own ``state_dict`` keys, only those of the task's
-closure) and ``meta`` (closure digest, seal, versions). ``weights_only=True`` loading
+and their arguments, the column order, each lateral adapter's sources and target),
+``state`` (tensors by the grown network's own ``state_dict`` keys, only those of the
+task's closure) and ``meta`` (closure digest, seal, versions). ``weights_only=True`` loading
 accepts exactly such dictionaries and runs no code. The forward below repeats the grown
 network's operations in the same order, so the logits are bit-identical on the same
 device, dtype, thread count and batch.
@@ -96,16 +96,24 @@ class TaskModel(nn.Module):
         self.columns = nn.ModuleDict({str(c["index"]): _Column(c)
                                       for c in architecture["columns"]})
         self.adapters = nn.ModuleDict()
-        self.into: dict[tuple[int, int], list[tuple[str, int]]] = {}
-        self.into_head: list[tuple[str, int]] = []
+        self.into: dict[tuple[int, int], list[tuple[str, list[int]]]] = {}
+        self.into_head: list[tuple[str, list[int]]] = []
         for a in architecture["adapters"]:  # in the order the grown network adds them
             self.adapters[a["key"]] = _Steps(a["steps"])
+            sources = [int(j) for j in a["sources"]]
             if a["head"] is not None:
-                self.into_head.append((a["key"], int(a["source"])))
+                self.into_head.append((a["key"], sources))
             else:
                 self.into.setdefault((int(a["column"]), int(a["block"])), []).append(
-                    (a["key"], int(a["source"])))
+                    (a["key"], sources))
         self.heads = nn.ModuleDict({self.task: build_layer(architecture["head"])})
+
+    def _lateral(self, key: str, sources: list[int], outs: dict[int, list[torch.Tensor]],
+                 index: int) -> torch.Tensor:
+        """One adapter's output; a joint adapter reads its sources concatenated."""
+        if len(sources) == 1:
+            return self.adapters[key](outs[sources[0]][index])
+        return self.adapters[key](torch.cat([outs[j][index] for j in sources], dim=1))
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         outs: dict[int, list[torch.Tensor]] = {}
@@ -115,14 +123,14 @@ class TaskModel(nn.Module):
             hs: list[torch.Tensor] = []
             for b, block in enumerate(col.blocks):
                 z = block.weighted(h)
-                for key, source in self.into.get((k, b), []):
-                    z = z + self.adapters[key](outs[source][b - 1])
+                for key, sources in self.into.get((k, b), []):
+                    z = z + self._lateral(key, sources, outs, b - 1)
                 h = block.post(z)
                 hs.append(h)
             outs[k] = hs
         logits = self.heads[self.task](outs[self.head_column][-1])
-        for key, source in self.into_head:
-            logits = logits + self.adapters[key](outs[source][-1])
+        for key, sources in self.into_head:
+            logits = logits + self._lateral(key, sources, outs, -1)
         return logits
 
 

@@ -165,6 +165,9 @@ def _check_args(max_drop: float, target_params: int | None, target_macs: int | N
         raise UsageError(f"--finetune must be a number of epochs of at least 0, got {finetune}")
     if finetune and not has_train:
         raise UsageError("--finetune needs the task's training data; pass --train FILE")
+    if has_train and not finetune:
+        raise UsageError("--train is read only for fine-tuning; add --finetune EPOCHS or "
+                         "drop --train")
 
 
 # ----------------------------------------------------------------------------- editing
