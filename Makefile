@@ -12,7 +12,6 @@ setup: $(STAMP) graphviz
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
-	$(PY) -m pip install --quiet --upgrade pip
 	$(PY) -m pip install --quiet $(TORCH_PIN)
 	$(PY) -m pip install --quiet -e ".[dev]"
 	touch $(STAMP)

@@ -109,7 +109,8 @@ def grown_net(raw: dict, tasks: int, classes: int) -> ProgressiveNet:
 
 def random_data(inputs: int, classes: int, n: int, n_val: int) -> TaskData:
     g = torch.Generator().manual_seed(0)
-    return TaskData(torch.randn(n, inputs, generator=g), torch.randint(0, classes, (n,), generator=g),
+    return TaskData(torch.randn(n, inputs, generator=g),
+                    torch.randint(0, classes, (n,), generator=g),
                     torch.randn(n_val, inputs, generator=g),
                     torch.randint(0, classes, (n_val,), generator=g), classes, "random")
 
@@ -231,16 +232,36 @@ class PlainProgressive(nn.Module):
         return logits
 
 
+def module_calls(fn: Callable[[], object]) -> int:
+    """nn.Module calls made by ``fn``: the Python overhead a batch of one pays for."""
+    count = [0]
+
+    def hook(module, args):  # noqa: ANN001 (torch's global hook signature)
+        count[0] += 1
+
+    handle = nn.modules.module.register_module_forward_pre_hook(hook)
+    try:
+        fn()
+    finally:
+        handle.remove()
+    return count[0]
+
+
 def bench_plain(net: ProgressiveNet, quick: bool) -> None:
     plain = PlainProgressive(net).eval()
     task = net.tasks[-1]
+    probe = torch.randn(1, 256)
+    with torch.no_grad():
+        calls = (module_calls(lambda: net(probe, task=task)), module_calls(lambda: plain(probe)))
+    print(f"  module calls per forward: colonnade {calls[0]}, plain {calls[1]} (adapter "
+          f"wrappers, block containers, empty stems)")
     for batch in (1, 256):
         x = torch.randn(batch, 256)
         with torch.no_grad():
             same = torch.equal(plain(x), net(x, task=task))
-            repeat = (200 if batch == 1 else 10) // (2 if quick else 1)
+            repeat = (50 if batch == 1 else 5) // (2 if quick else 1)
             t_plain, t_net = side_by_side(lambda x=x: plain(x), lambda x=x: net(x, task=task),
-                                          7, repeat)
+                                          21, repeat)
         ratio = t_net / t_plain
         print(f"  batch {batch:3d}: plain module {t_plain * 1e3:.3f} ms, colonnade "
               f"{t_net * 1e3:.3f} ms: {ratio:.2f}x ({verdict(ratio <= 1.15)}: <= 1.15x); "

@@ -53,6 +53,11 @@ fi
 echo "== 8. a report for the design review: markdown, self-contained HTML, JSON"
 colonnade report "$WS" -o "$OUT/report" --hardware vibe-node --project 10
 
+echo "== 9. every task in one pass (each column once), and one task shipped alone"
+colonnade predict "$WS" --all --data "$DATA/pump_a_faults_probe.npz" -o "$OUT/all_tasks_pred.npz"
+colonnade export "$WS" --task pump_a_cavitation -o "$OUT/pump_a_cavitation.pt"
+colonnade export "$WS" --task pump_a_cavitation -o "$OUT/pump_a_cavitation.onnx"
+
 echo "== last: every seal checked, bit for bit (exits non-zero if any task moved)"
 # Keep this the last step: the demo ends with every sealed task checking exact.
 colonnade check "$WS"

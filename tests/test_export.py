@@ -19,6 +19,7 @@ import onnx
 import onnxruntime as ort
 import pytest
 import torch
+from test_forward_all import CONV1D, CONV2D, DENSE, VARIANTS, grown, trimmed
 
 from colonnade.cli import main
 from colonnade.digest import closure_digests
@@ -32,8 +33,6 @@ from colonnade.export import (
 )
 from colonnade.spec import parse_spec
 from colonnade.store import create, read_manifest, save
-
-from test_forward_all import CONV1D, CONV2D, DENSE, VARIANTS, grown, trimmed
 
 SPECS = {"dense": DENSE, "conv1d": CONV1D, "conv2d": CONV2D}
 STANDALONE = Path(__file__).resolve().parents[1] / "src" / "colonnade" / "standalone.py"
@@ -199,3 +198,18 @@ def test_unknown_layers_are_refused():
 
     with pytest.raises(ExportError, match="cannot be exported"):
         describe_layer(Custom())
+
+
+def test_a_sealed_task_that_moved_is_not_exported():
+    from colonnade.errors import SealedError
+    from colonnade.seal import Probe, seal_task
+
+    net = grown(DENSE)
+    x = _x(net, n=20)
+    seal_task(net, "a", Probe(x, torch.zeros(20, dtype=torch.int64), "0" * 64, "probe.npz"))
+    blob = standalone_blob(net, "a")
+    assert blob["meta"]["seal"]["closure_sha256"] == blob["meta"]["closure_sha256"]
+    with torch.no_grad():
+        net.heads["a"].bias[0] += 1.0  # an in-place edit behind the guard's back
+    with pytest.raises(SealedError, match="no longer matches its seal v1"):
+        standalone_blob(net, "a")

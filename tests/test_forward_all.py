@@ -104,8 +104,8 @@ def test_forward_all_equals_each_task_forward(kind, variant):
 def test_forward_all_runs_each_column_once():
     net = grown(DENSE)
     calls = {k: 0 for k in range(len(net.columns))}
-    hooks = [col.stem.register_forward_hook(lambda *_, k=k: calls.__setitem__(k, calls[k] + 1))
-             for k, col in enumerate(net.columns)]
+    hooks = [col.blocks[0].weighted.register_forward_hook(
+        lambda *_, k=k: calls.__setitem__(k, calls[k] + 1)) for k, col in enumerate(net.columns)]
     with torch.no_grad():
         net.forward_all(torch.randn(4, 12))
     for h in hooks:

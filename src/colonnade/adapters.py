@@ -70,7 +70,10 @@ class LinearAdapter(LateralAdapter):
         self.U = _target_map(target, source_shape[0], target_shape[0])
 
     def forward(self, h: torch.Tensor) -> torch.Tensor:
-        return self.U(h)
+        # Inner layers run through .forward: the same operations without a second module
+        # dispatch per adapter (it shows at batch 1, benchmarks/run.py); hooks belong on
+        # the adapter itself, where usage.py and merge.py put them.
+        return self.U.forward(h)
 
 
 class NonlinearAdapter(LateralAdapter):
@@ -95,7 +98,7 @@ class NonlinearAdapter(LateralAdapter):
         self.U.reset_parameters()
 
     def forward(self, h: torch.Tensor) -> torch.Tensor:
-        return self.U(self.act(self.V(self.alpha * h)))
+        return self.U.forward(self.act.forward(self.V.forward(self.alpha * h)))  # see above
 
     def extra_repr(self) -> str:
         return f"{super().extra_repr()}, rank={self.rank}, act={self.activation_name}"
@@ -121,7 +124,7 @@ class JointAdapter(LateralAdapter):
         self.U = _pointwise(target, self.rank, target_shape[0])
 
     def forward(self, h: torch.Tensor) -> torch.Tensor:
-        return self.U(self.V(h))
+        return self.U.forward(self.V.forward(h))  # see LinearAdapter.forward
 
     def extra_repr(self) -> str:
         return f"{super().extra_repr()}, sources={len(self.source_shapes)}, rank={self.rank}"

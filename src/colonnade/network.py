@@ -259,13 +259,18 @@ class ProgressiveNet(nn.Module):
             if k in outs:
                 continue
             col = self.columns[k]
-            h = col.stem(x)
+            # The stem's and post's layers are called one by one rather than through their
+            # nn.Sequential: the same operations, fewer module calls for small batches.
+            h = x
+            for layer in col.stem:
+                h = layer(h)
             hs: list[torch.Tensor] = []
             for b, block in enumerate(col.blocks):
-                z = block.weighted(h)
+                h = block.weighted(h)
                 for key, _ in self._into.get((k, b), []):
-                    z = z + self._lateral(key, outs, b - 1)
-                h = block.post(z)
+                    h = h + self._lateral(key, outs, b - 1)
+                for layer in block.post:
+                    h = layer(h)
                 hs.append(h)
             outs[k] = hs
         return outs
