@@ -305,19 +305,8 @@ def _print_projection(proj: dict[str, Any]) -> None:
                  "MACs on path", "network params", "network fp32", "peak activations"]))
 
 
-def _over_text(v: dict[str, Any]) -> str:
-    if v["fits"]:
-        return "fits"
-    parts = []
-    for k, o in v["over"].items():
-        extra = o["need"] - o["budget"]
-        by = f"{extra:.3g} ms" if k == "latency" else _bytes(extra)
-        parts.append(f"{k.replace('_', ' ')} by {by} (+{o['ratio'] - 1:.0%})")
-    return "exceeds " + ", ".join(parts)
-
-
 def _print_hardware(hw: dict[str, Any], projected: bool) -> None:
-    from .hardware import format_rate
+    from .hardware import format_rate, verdict_text
 
     prof = hw["profile"]
     print(f"device {prof['name']}: weights {_bytes(prof['weight_memory_bytes'])}, activations "
@@ -327,7 +316,7 @@ def _print_hardware(hw: dict[str, Any], projected: bool) -> None:
     print()
     print(table([[v["task"], "yes" if v["future"] else "no", _bytes(v["need"]["weight_bytes"]),
                   _bytes(v["need"]["activation_bytes"]), round(v["need"]["latency_ms"], 4),
-                  _over_text(v)] for v in hw["verdicts"]],
+                  verdict_text(v)] for v in hw["verdicts"]],
                 ["task", "projected", "weights", "activations", "latency ms (est.)",
                  "verdict"]))
     if hw["already_exceeded"]:

@@ -21,7 +21,7 @@ from .costs import DTYPE_BYTES
 from .errors import SpecError
 
 __all__ = ["HardwareProfile", "load_profile", "parse_profile", "profile_dirs", "MEMORY_UNITS",
-           "RATE_UNITS", "TIME_UNITS", "format_bytes", "format_rate"]
+           "RATE_UNITS", "TIME_UNITS", "format_bytes", "format_rate", "verdict_text"]
 
 # SI prefixes are powers of 1000, IEC prefixes (KiB, MiB, GiB) powers of 1024 (IEC 80000-13).
 MEMORY_UNITS = {"B": 1, "kB": 10**3, "MB": 10**6, "GB": 10**9, "KiB": 2**10, "MiB": 2**20,
@@ -186,3 +186,15 @@ def format_bytes(n: float) -> str:
         if abs(n) >= size:
             return f"{n / size:.1f} {unit}"
     return f"{n:.0f} B"
+
+
+def verdict_text(verdict: dict[str, Any]) -> str:
+    """A sizing verdict as words: ``fits``, or which budgets it exceeds and by how much."""
+    if verdict["fits"]:
+        return "fits"
+    parts = []
+    for k, o in verdict["over"].items():
+        extra = o["need"] - o["budget"]
+        by = f"{extra:.3g} ms" if k == "latency" else format_bytes(extra)
+        parts.append(f"{k.replace('_', ' ')} by {by} (+{o['ratio'] - 1:.0%})")
+    return "exceeds " + ", ".join(parts)

@@ -19,7 +19,7 @@ from typing import Any
 
 from . import __version__
 from .errors import UsageError
-from .hardware import format_bytes, format_rate, load_profile
+from .hardware import format_bytes, format_rate, load_profile, verdict_text
 from .ledger import cost_network
 from .network import ProgressiveNet
 from .plots import accuracy_heatmap, macs_per_task, params_per_task, projected_growth
@@ -121,17 +121,6 @@ def _ms(lat: dict[str, Any] | None) -> str:
     return f"{lat['median']:.3f} ({lat['q1']:.3f}-{lat['q3']:.3f})"
 
 
-def _verdict_text(v: dict[str, Any]) -> str:
-    if v["fits"]:
-        return "fits"
-    parts = []
-    for k, o in v["over"].items():
-        extra = o["need"] - o["budget"]
-        by = f"{extra:.3g} ms" if k == "latency" else format_bytes(extra)
-        parts.append(f"{k.replace('_', ' ')} by {by} (+{o['ratio'] - 1:.0%})")
-    return "exceeds " + ", ".join(parts)
-
-
 def _sections(ledger: dict[str, Any], accuracy: dict[str, Any] | None,
               ) -> list[tuple[str, list[str], list[list[str]] | None, str]]:
     """(title, paragraphs, table rows with a header row first, figure name) per section."""
@@ -202,7 +191,7 @@ def _sections(ledger: dict[str, Any], accuracy: dict[str, Any] | None,
             vrows.append([v["task"], "yes" if v["future"] else "no",
                           format_bytes(v["need"]["weight_bytes"]),
                           format_bytes(v["need"]["activation_bytes"]),
-                          f"{v['need']['latency_ms']:.3g}", _verdict_text(v)])
+                          f"{v['need']['latency_ms']:.3g}", verdict_text(v)])
     out.append(("Growth against the device" if hw else "Projected growth",
                 paragraphs or ["No hardware profile given; pass --hardware PROFILE to "
                                "draw the device's budget lines."], vrows, "growth.png"))
