@@ -149,3 +149,14 @@ def test_console_script_runs_without_traceback(files):
     assert proc.returncode == 2
     assert proc.stderr.strip() == "colonnade: error: missing.yaml: no such spec file"
     assert "Traceback" not in proc.stderr
+
+
+def test_file_system_refusals_get_one_sentence(files, capsys):
+    before = _grown(files)
+    blocker = files["tmp"] / "a-file"
+    blocker.write_text("not a folder")
+    code = run("report", files["ws"], "-o", blocker / "report")
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code != 0 and len(err) == 1 and err[0].startswith("colonnade: error: "), err
+    assert "Traceback" not in "".join(err)
+    assert snapshot(files["ws"]) == before

@@ -642,6 +642,12 @@ def main(argv: Sequence[str] | None = None) -> int:
         devnull = os.open(os.devnull, os.O_WRONLY)
         os.dup2(devnull, sys.stdout.fileno())
         return 1
+    except OSError as exc:
+        # The file system said no (a folder that cannot be made, a full disk): one sentence.
+        where = f"{exc.filename}: " if exc.filename else ""
+        print(f"colonnade: error: {where}{exc.strerror or exc}; the workspace is unchanged",
+              file=sys.stderr)
+        return 1
 
 
 if __name__ == "__main__":

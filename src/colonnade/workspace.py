@@ -133,7 +133,9 @@ def predict_file(folder: str | Path, task: str | None, data: str | Path, out: st
     (each column once per batch) and, for every task, ``logits_<task>`` and
     ``pred_<task>``, plus ``tasks``, the task names in growth order.
     """
-    if all_tasks == (task is not None):
+    if all_tasks and task is not None:
+        raise UsageError("give either --task NAME or --all, not both")
+    if not all_tasks and task is None:
         raise UsageError("name one task with --task NAME, or pass --all for every task")
     out = Path(out)
     if out.suffix.lower() != ".npz":
