@@ -188,9 +188,10 @@ def test_predict_needs_exactly_one_of_task_and_all(tmp_path, capsys):
     data = tmp_path / "x.npz"
     np.savez(data, x=np.zeros((3, 12), np.float32))
     out = tmp_path / "p.npz"
-    for flags in (["--all", "--task", "a"], []):
+    for flags, message in ((["--all", "--task", "a"], "give either --task NAME or --all"),
+                           ([], "name one task with --task NAME, or pass --all")):
         assert main(["predict", str(ws), *flags, "--data", str(data), "-o", str(out)]) == 2
         err = capsys.readouterr().err
-        assert "name one task with --task NAME, or pass --all" in err
+        assert message in err
         assert "Traceback" not in err
     assert not out.exists()
