@@ -78,6 +78,21 @@ def task_data(task: dict, val_fraction: float = 0.2, seed: int = 0):
                     int(task["y"].max()) + 1, task["name"])
 
 
+def flop_macs(fn, *args) -> int:
+    """MACs as PyTorch itself counts them: FlopCounterMode's FLOPs / 2.
+
+    Source: torch.utils.flop_counter, which counts 2 FLOPs per multiply-accumulate of
+    matrix products and convolutions.
+    """
+    from torch.utils.flop_counter import FlopCounterMode
+
+    with FlopCounterMode(display=False) as counter:
+        fn(*args)
+    flops = counter.get_total_flops()
+    assert flops % 2 == 0
+    return flops // 2
+
+
 def write_npz(path, task: dict) -> str:
     np.savez(path, x=task["x"], y=task["y"])
     return str(path)

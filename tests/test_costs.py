@@ -15,7 +15,7 @@ from pathlib import Path
 import pytest
 import torch
 import torch.nn as nn
-from torch.utils.flop_counter import FlopCounterMode
+from conftest import flop_macs  # FlopCounterMode's FLOPs / 2 (torch.utils.flop_counter)
 
 from colonnade import costs
 from colonnade.adapters import make_adapter
@@ -26,15 +26,6 @@ from colonnade.spec import Conv1d, Conv2d, Dense, load_spec, parse_spec
 SPECS = Path(__file__).parent.parent / "specs"
 CATALOGUE = ["pump_spectra.yaml", "mlp_linear.yaml", "conv1d_spectra.yaml",
              "conv2d_images.yaml"]
-
-
-def flop_macs(fn, *args) -> int:
-    """MACs as PyTorch counts them: FlopCounterMode's FLOPs / 2 (source: torch.utils.flop_counter)."""
-    with FlopCounterMode(display=False) as counter:
-        fn(*args)
-    flops = counter.get_total_flops()
-    assert flops % 2 == 0
-    return flops // 2
 
 
 def _spec(name: str, lateral: str):

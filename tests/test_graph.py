@@ -18,7 +18,7 @@ import xml.etree.ElementTree as ET
 import networkx as nx
 import pytest
 import torch
-from torch.utils.flop_counter import FlopCounterMode
+from conftest import flop_macs  # FlopCounterMode's FLOPs / 2 (torch.utils.flop_counter)
 
 import colonnade
 from colonnade import seal
@@ -118,13 +118,6 @@ def svg_groups(root: ET.Element) -> dict[str, set[str]]:
         if classes & {"node", "edge"}:
             out[g.get("id")] = classes
     return out
-
-
-def flop_macs(fn) -> int:
-    """MACs as PyTorch counts them: FlopCounterMode's FLOPs / 2."""
-    with FlopCounterMode(display=False) as counter:
-        fn()
-    return counter.get_total_flops() // 2
 
 
 # ----------------------------------------------------------------------------- the graph

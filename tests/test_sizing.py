@@ -9,7 +9,7 @@ from pathlib import Path
 
 import pytest
 import torch
-from torch.utils.flop_counter import FlopCounterMode
+from conftest import flop_macs  # FlopCounterMode's FLOPs / 2 (torch.utils.flop_counter)
 
 from colonnade import costs, sizing, store
 from colonnade.cli import main
@@ -21,13 +21,6 @@ from colonnade.spec import load_spec, parse_spec
 SPECS = Path(__file__).parent.parent / "specs"
 CATALOGUE = ["pump_spectra.yaml", "mlp_linear.yaml", "conv1d_spectra.yaml",
              "conv2d_images.yaml"]
-
-
-def flop_macs(fn) -> int:
-    """FlopCounterMode FLOPs / 2 (source: torch.utils.flop_counter)."""
-    with FlopCounterMode(display=False) as counter:
-        fn()
-    return counter.get_total_flops() // 2
 
 
 def _spec(name: str, lateral: str):

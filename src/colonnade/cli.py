@@ -459,6 +459,13 @@ def _trim(args: argparse.Namespace) -> int:
 
 
 # ----------------------------------------------------------------------------- parser
+def _latency_flags(p: argparse.ArgumentParser) -> None:
+    """The latency measurement's flags, shared by ``cost`` and ``report``."""
+    p.add_argument("--repeats", type=_positive_int, default=20,
+                   help="timed calls per latency figure (default 20)")
+    p.add_argument("--no-latency", action="store_true", help="skip the latency measurement")
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="colonnade",
@@ -558,9 +565,7 @@ def build_parser() -> argparse.ArgumentParser:
                         "task's)")
     p.add_argument("--hardware", metavar="PROFILE",
                    help="a hardware profile YAML, or a name in specs/hardware/")
-    p.add_argument("--repeats", type=_positive_int, default=20,
-                   help="timed calls per latency figure (default 20)")
-    p.add_argument("--no-latency", action="store_true", help="skip the latency measurement")
+    _latency_flags(p)
 
     p = verb("report", _report, "write report.md, a self-contained report.html and "
                                 "report.json with plots")
@@ -570,9 +575,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="a hardware profile YAML, or a name in specs/hardware/")
     p.add_argument("--project", type=_positive_int, default=10, metavar="N",
                    help="future tasks to project (default 10)")
-    p.add_argument("--repeats", type=_positive_int, default=20,
-                   help="timed calls per latency figure (default 20)")
-    p.add_argument("--no-latency", action="store_true", help="skip the latency measurement")
+    _latency_flags(p)
 
     p = verb("draw", _draw, "draw the grown network for a design review (.svg, .png, .pdf, "
                             "or .dot source)")

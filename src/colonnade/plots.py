@@ -77,37 +77,33 @@ def _stacked(ax: Any, names: list[str], parts: list[dict[str, int]], future: lis
     _labels(ax, names)
 
 
-def params_per_task(tasks: list[dict[str, Any]], projected: list[dict[str, Any]]) -> bytes:
-    """Parameters each task added, stacked by part; projected tasks hatched."""
+def _per_task_bars(tasks: list[dict[str, Any]], projected: list[dict[str, Any]], key: str,
+                   ylabel: str, title: str) -> bytes:
+    """One bar per task (projected ones hatched), stacked by part from ``key``."""
     with plt.rc_context(_STYLE):
         fig, ax = plt.subplots(figsize=(7.5, 3.6))
         names = [t["task"] for t in tasks] + [p["task"] for p in projected]
-        parts = [t["params_added_by_part"] for t in tasks] + [
-            p["params_added_by_part"] for p in projected]
+        parts = [t[key] for t in tasks] + [p[key] for p in projected]
         future = [False] * len(tasks) + [True] * len(projected)
         _stacked(ax, names, parts, future)
         ax.yaxis.set_major_formatter(EngFormatter(sep=" "))
-        ax.set_ylabel("parameters added (count)")
+        ax.set_ylabel(ylabel)
         ax.set_xlabel("task, in growth order" + (" (hatched: projected)" if projected else ""))
-        ax.set_title("Parameters each task brings, by part")
+        ax.set_title(title)
         ax.legend(loc="upper left")
         return _png(fig)
+
+
+def params_per_task(tasks: list[dict[str, Any]], projected: list[dict[str, Any]]) -> bytes:
+    """Parameters each task added, stacked by part; projected tasks hatched."""
+    return _per_task_bars(tasks, projected, "params_added_by_part",
+                          "parameters added (count)", "Parameters each task brings, by part")
 
 
 def macs_per_task(tasks: list[dict[str, Any]], projected: list[dict[str, Any]]) -> bytes:
     """MACs of each task's inference path at batch 1, stacked by part."""
-    with plt.rc_context(_STYLE):
-        fig, ax = plt.subplots(figsize=(7.5, 3.6))
-        names = [t["task"] for t in tasks] + [p["task"] for p in projected]
-        parts = [t["macs_by_part"] for t in tasks] + [p["macs_by_part"] for p in projected]
-        future = [False] * len(tasks) + [True] * len(projected)
-        _stacked(ax, names, parts, future)
-        ax.yaxis.set_major_formatter(EngFormatter(sep=" "))
-        ax.set_ylabel("MACs per inference (batch 1)")
-        ax.set_xlabel("task, in growth order" + (" (hatched: projected)" if projected else ""))
-        ax.set_title("Compute on each task's path (FLOPs = 2 x MACs)")
-        ax.legend(loc="upper left")
-        return _png(fig)
+    return _per_task_bars(tasks, projected, "macs_by_part", "MACs per inference (batch 1)",
+                          "Compute on each task's path (FLOPs = 2 x MACs)")
 
 
 def projected_growth(series: dict[str, Any]) -> bytes:

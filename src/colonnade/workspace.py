@@ -11,7 +11,6 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-import torch
 
 from .data import load_task_data
 from .errors import UsageError
@@ -65,20 +64,19 @@ def grow_workspace(folder: str | Path, task: str, train: str | Path, val: str | 
 
 
 def parameter_counts(net: ProgressiveNet) -> dict[str, int]:
-    """Parameters by part kind, from ``numel`` of the modules themselves."""
-    def count(module: torch.nn.Module) -> int:
-        return sum(p.numel() for p in module.parameters())
+    """Parameters by part kind, from the cost ledger (``numel`` of the modules)."""
+    from .costs import count_params
 
-    return {
-        "columns": sum(count(c) for c in net.columns),
-        "adapters": sum(count(a) for a in net.adapters.values()),
-        "heads": sum(count(h) for h in net.heads.values()),
-        "total": count(net),
-    }
+    columns = sum(count_params(c, "column").total for c in net.columns)
+    adapters = sum(count_params(a, "adapters").total for a in net.adapters.values())
+    heads = sum(count_params(h, "head").total for h in net.heads.values())
+    return {"columns": columns, "adapters": adapters, "heads": heads,
+            "total": columns + adapters + heads}
 
 
 def describe(folder: str | Path) -> dict[str, Any]:
     """What ``show`` prints: tasks, columns, heads, adapters and parameter counts."""
+    from .costs import task_cost
     from .seal import sealed_tasks
     from .transfer import record as transfer_record
 
@@ -88,11 +86,7 @@ def describe(folder: str | Path) -> dict[str, Any]:
     for name, info in net.task_info.items():
         record = net.meta["records"].get(name, {})
         closure = net.closure(name)
-        modules = dict(net.part_modules())
-        path_params = sum(p.numel() for part in
-                          [f"column:{k}" for k in closure.columns]
-                          + [f"adapter:{a}" for a in closure.adapters] + [f"head:{name}"]
-                          for p in modules[part].parameters())
+        path_params = task_cost(net, name).path.params.total
         tasks.append({
             "task": name, "mode": info.mode, "column": info.column, "classes": info.classes,
             "val_accuracy": record.get("val_accuracy"),
