@@ -97,6 +97,18 @@ def test_trimming_an_adapter_of_a_sealed_closure_is_refused(ws):
         seal.guard(net, ["adapter:c1_b1_from_c0"], "prune")
 
 
+@pytest.mark.parametrize("state,action", [("pruned", "prune"), ("merged", "merge")])
+def test_retiring_an_adapter_of_a_sealed_closure_is_refused_before_any_change(ws, state,
+                                                                               action):
+    # retire_adapters is the one place trim and merge take adapters out of the network.
+    net = store.load(ws)
+    before = _state_bytes(net)
+    with pytest.raises(SealedError, match=rf"cannot {action} .*'perm1'"):
+        net.retire_adapters(["c1_b1_from_c0"], state, action)
+    assert net.adapter_info["c1_b1_from_c0"].state == "live"
+    assert "c1_b1_from_c0" in net.adapters and _state_bytes(net) == before
+
+
 def test_removing_a_sealed_task_is_refused(ws):
     net = store.load(ws)
     with pytest.raises(SealedError, match=r"perm1"):

@@ -207,10 +207,9 @@ def install_joint(net: ProgressiveNet, fit: JointFit, rank: int,
     key = joint_key(fit, net.adapter_info)
     undo = {"key": key, "modules": {k: net.adapters[k] for k in fit.keys},
             "order": list(net.adapters.keys())}
+    net.retire_adapters(list(fit.keys), "merged", "merge")
     for k in fit.keys:
-        net.adapter_info[k].state = "merged"
         net.adapter_info[k].extra["merged_into"] = key
-        del net.adapters[k]
     info = AdapterInfo(key, "joint", fit.sources[0], column=fit.column, block=fit.block,
                        head=fit.head, extra={"sources": list(fit.sources), "rank": int(rank),
                                              "merged_from": list(fit.keys), **(extra or {})})
@@ -224,18 +223,9 @@ def install_joint(net: ProgressiveNet, fit: JointFit, rank: int,
 def uninstall_joint(net: ProgressiveNet, undo: dict) -> None:
     """Put the original adapters back, in their original order, and drop the joint one."""
     key = undo["key"]
-    current = dict(net.adapters.items())
-    current.pop(key, None)
-    current.update(undo["modules"])
-    for k in list(net.adapters.keys()):
-        del net.adapters[k]
-    for k in undo["order"]:
-        if k in current:
-            net.adapters[k] = current.pop(k)
-    for k, m in current.items():
-        net.adapters[k] = m
+    if key in net.adapters:
+        del net.adapters[key]
     net.adapter_info.pop(key, None)
+    net.reinstate_adapters(undo["modules"], undo["order"])
     for k in undo["modules"]:
-        net.adapter_info[k].state = "live"
         net.adapter_info[k].extra.pop("merged_into", None)
-    net._reindex()

@@ -450,6 +450,45 @@ class ProgressiveNet(nn.Module):
         self._make_trainable(parts)
         return parts
 
+    def retire_adapters(self, keys: list[str], state: str, action: str,
+                        ) -> dict[str, LateralAdapter]:
+        """Take live adapters out of the forward path, as ``pruned`` or ``merged``.
+
+        The one place adapters leave the network; adapters inside a sealed task's closure
+        are refused (SealedError naming the seal) before anything changes. Returns the
+        removed modules, so that ``reinstate_adapters`` can undo it.
+        """
+        from .seal import guard
+
+        guard(self, [f"adapter:{k}" for k in keys], action)
+        removed = {}
+        for k in keys:
+            removed[k] = self.adapters[k]
+            del self.adapters[k]
+            self.adapter_info[k].state = state
+        self._reindex()
+        return removed
+
+    def reinstate_adapters(self, modules: dict[str, LateralAdapter], order: list[str]) -> None:
+        """Put retired adapters back live; ``order`` restores the ModuleDict's key order,
+        and with it the order of ``state_dict()``."""
+        self.set_adapter_modules({**dict(self.adapters.items()), **modules}, order)
+        for k in modules:
+            self.adapter_info[k].state = "live"
+        self._reindex()
+
+    def set_adapter_modules(self, modules: dict[str, LateralAdapter], order: list[str]) -> None:
+        """Refill ``adapters`` with ``modules``: keys in ``order`` first, then the rest."""
+        for k in list(self.adapters.keys()):
+            del self.adapters[k]
+        for k in order:
+            if k in modules:
+                self.adapters[k] = modules[k]
+        for k, m in modules.items():
+            if k not in self.adapters:
+                self.adapters[k] = m
+        self._reindex()
+
     def remove_task(self, name: str) -> None:
         """Undo the newest growth step (used to roll back a failed grow)."""
         if not self.tasks or self.tasks[-1] != name:

@@ -175,19 +175,6 @@ def _param_count(module: torch.nn.Module) -> int:
     return sum(p.numel() for p in module.parameters())
 
 
-def _set_order(net: ProgressiveNet, modules: dict[str, torch.nn.Module], order: list[str],
-               ) -> None:
-    """Re-fill ``net.adapters`` in a given key order (state_dict order stays as it was)."""
-    for k in list(net.adapters.keys()):
-        del net.adapters[k]
-    for k in order:
-        if k in modules:
-            net.adapters[k] = modules[k]
-    for k, m in modules.items():
-        if k not in net.adapters:
-            net.adapters[k] = m
-
-
 def _fold_targets(net: ProgressiveNet, task: str) -> dict[str, tuple[str, torch.nn.Module]]:
     """Layers whose bias may take a pruned adapter's mean: layer -> (part, weighted layer).
 
@@ -229,9 +216,7 @@ class _Editor:
             self.biases[key] = (layer, layer.bias.detach().clone())
             with torch.no_grad():
                 layer.bias.add_(mean.to(layer.bias.dtype).to(layer.bias.device))
-        self.net.adapter_info[key].state = "pruned"
-        del self.net.adapters[key]
-        self.net._reindex()
+        self.net.retire_adapters([key], "pruned", "prune")
         return module
 
     def unprune(self, key: str, module: torch.nn.Module) -> None:
@@ -239,15 +224,11 @@ class _Editor:
             layer, bias = self.biases.pop(key)
             with torch.no_grad():
                 layer.bias.copy_(bias)
-        self.net.adapter_info[key].state = "live"
-        current = dict(self.net.adapters.items())
-        current[key] = module
-        _set_order(self.net, current, self.order)
-        self.net._reindex()
+        self.net.reinstate_adapters({key: module}, self.order)
 
     def restore(self) -> None:
         net = self.net
-        _set_order(net, self.modules, self.order)
+        net.set_adapter_modules(self.modules, self.order)
         net.adapter_info.clear()
         net.adapter_info.update(self.info)
         net.meta.clear()
