@@ -29,14 +29,18 @@ graphviz:
 demo: setup
 	PATH="$(CURDIR)/$(VENV)/bin:$$PATH" bash examples/demo.sh
 
+# The architecture linter first (layers and circles, from pyproject.toml), then the suite.
 test: setup
+	$(VENV)/bin/lint-imports --config pyproject.toml
 	$(PY) -m pytest
 
 bench: setup
 	$(PY) benchmarks/run.py
+	for f in benchmarks/bench_*.py; do $(PY) $$f || exit 1; done
 
 lint: setup
 	$(VENV)/bin/ruff check src tests examples benchmarks
+	$(VENV)/bin/lint-imports --config pyproject.toml
 
 clean:
 	rm -rf demo-out .pytest_cache

@@ -39,10 +39,10 @@ from torch.utils.flop_counter import FlopCounterMode
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "src"))
 
 from colonnade import __version__  # noqa: E402
-from colonnade.data import TaskData  # noqa: E402
-from colonnade.fit import fit_task  # noqa: E402
-from colonnade.network import ProgressiveNet  # noqa: E402
-from colonnade.spec import parse_spec  # noqa: E402
+from colonnade.model.network import ProgressiveNet  # noqa: E402
+from colonnade.model.spec import parse_spec  # noqa: E402
+from colonnade.training.data import TaskData  # noqa: E402
+from colonnade.training.fit import fit_task  # noqa: E402
 
 
 # ----------------------------------------------------------------------------- helpers
@@ -118,7 +118,7 @@ def random_data(inputs: int, classes: int, n: int, n_val: int) -> TaskData:
 # ----------------------------------------------------------------------------- 1. cache
 def training_ideal(net: ProgressiveNet, task: str, data: TaskData, batch: int) -> float:
     """FLOPs of one epoch (train steps + validation) without the cache over with it."""
-    from colonnade.cache import FrozenActivations
+    from colonnade.training.cache import FrozenActivations
 
     xb, yb = data.x[:batch], data.y[:batch]
     xv = data.x_val[:256]

@@ -70,7 +70,7 @@ def split_digit_tasks(seed: int = 0):
 
 def task_data(task: dict, val_fraction: float = 0.2, seed: int = 0):
     """A colonnade TaskData from a task dict, with a stratified validation split."""
-    from colonnade.data import TaskData, stratified_split
+    from colonnade.training.data import TaskData, stratified_split
 
     tr, va = stratified_split(task["y"], val_fraction, seed)
     return TaskData(torch.from_numpy(task["x"][tr]), torch.from_numpy(task["y"][tr]),

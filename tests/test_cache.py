@@ -16,15 +16,20 @@ import pytest
 import torch
 from conftest import DIGITS_SPEC, permuted_digit_tasks, task_data, write_npz
 
-from colonnade.cache import FrozenActivations, constant_columns, frozen_cache, needed_outputs
 from colonnade.cli import main
-from colonnade.digest import closure_digests
 from colonnade.errors import SpecError
-from colonnade.fit import fit_task, task_logits
-from colonnade.growth import grow
-from colonnade.network import ProgressiveNet
-from colonnade.spec import parse_spec
-from colonnade.store import load, read_manifest
+from colonnade.files.store import load, read_manifest
+from colonnade.model.digest import closure_digests
+from colonnade.model.network import ProgressiveNet
+from colonnade.model.spec import parse_spec
+from colonnade.training.cache import (
+    FrozenActivations,
+    constant_columns,
+    frozen_cache,
+    needed_outputs,
+)
+from colonnade.training.fit import fit_task, task_logits
+from colonnade.training.growth import grow
 
 
 def adam_bound(steps: int, lr: float) -> float:
@@ -249,7 +254,7 @@ def test_conv_columns_train_alike_with_and_without_cache():
         "train": {"epochs": 2, "batch_size": 16, "patience": 0},
     })
     gen = torch.Generator().manual_seed(0)
-    from colonnade.data import TaskData
+    from colonnade.training.data import TaskData
 
     data = TaskData(torch.randn(90, 1, 32, generator=gen), torch.randint(0, 3, (90,), generator=gen),
                     torch.randn(20, 1, 32, generator=gen), torch.randint(0, 3, (20,), generator=gen),
@@ -302,7 +307,7 @@ def test_cache_where_batching_changes_the_last_bits(capsys):
     within float rounding as amplified by the optimizer. Measured and bounded here."""
     from test_forward_all import DENSE, merged
 
-    from colonnade.data import TaskData
+    from colonnade.training.data import TaskData
 
     base = merged(DENSE)
     gen = torch.Generator().manual_seed(4)

@@ -11,8 +11,8 @@ import pytest
 import yaml
 from conftest import permuted_digit_tasks, snapshot, write_npz
 
-from colonnade import fit
 from colonnade.cli import main
+from colonnade.training import fit
 
 
 @pytest.fixture
@@ -160,3 +160,33 @@ def test_file_system_refusals_get_one_sentence(files, capsys):
     assert code != 0 and len(err) == 1 and err[0].startswith("colonnade: error: "), err
     assert "Traceback" not in "".join(err)
     assert snapshot(files["ws"]) == before
+
+
+def test_show_reads_the_manifest_only_and_its_counts_match_numel(files, capsys):
+    """``show`` never imports torch, and its sizes equal numel() of the loaded modules."""
+    import colonnade
+    from colonnade.files import store
+
+    assert run("new", files["spec"], "-o", files["ws"]) == 0
+    assert run("grow", files["ws"], "--task", "a", "--train", files["a"], "--quiet") == 0
+    assert run("grow", files["ws"], "--task", "c", "--train", files["b"], "--quiet",
+               "--mode", "head", "--on", "a") == 0
+    code = ("import sys, json\nfrom colonnade.cli import main\n"
+            f"assert main(['show', {files['ws']!r}, '--json']) == 0\n"
+            "assert 'torch' not in sys.modules, 'show imported torch'\n")
+    result = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                            timeout=60)
+    assert result.returncode == 0, result.stderr
+    info = json.loads(result.stdout)
+    net = colonnade.load(files["ws"])
+    # numel() of the live modules is the reference (PyTorch's own count).
+    assert info["parameters"]["total"] == sum(p.numel() for p in net.parameters())
+    assert info["columns"][0]["params"] == sum(p.numel() for p in net.columns[0].parameters())
+    # A workspace without the summary (as written before it existed) shows the same.
+    manifest = store.read_manifest(files["ws"])
+    manifest.pop("summary")
+    (files["tmp"] / "ws" / "manifest.yaml").write_text(yaml.safe_dump(manifest,
+                                                                       sort_keys=False))
+    from colonnade.app.show import describe
+
+    assert describe(files["ws"]) == info

@@ -17,11 +17,12 @@ import torch
 import torch.nn as nn
 from conftest import flop_macs  # FlopCounterMode's FLOPs / 2 (torch.utils.flop_counter)
 
-from colonnade import costs
-from colonnade.adapters import make_adapter
-from colonnade.layers import build_layer, layer_output_shape
-from colonnade.network import ProgressiveNet
-from colonnade.spec import Conv1d, Conv2d, Dense, load_spec, parse_spec
+from colonnade.costing import costs
+from colonnade.model.adapters import make_adapter
+from colonnade.model.layers import build_layer, layer_output_shape
+from colonnade.model.network import ProgressiveNet
+from colonnade.model.schema import Conv1d, Conv2d, Dense
+from colonnade.model.spec import load_spec, parse_spec
 
 SPECS = Path(__file__).parent.parent / "specs"
 CATALOGUE = ["pump_spectra.yaml", "mlp_linear.yaml", "conv1d_spectra.yaml",
@@ -276,8 +277,8 @@ def test_peak_activation_views_write_nothing():
 
 def _merge_by_hand(net, keys, rank=3):
     """Replace single-source adapters into one layer by a joint adapter, as a merge does."""
-    from colonnade.adapters import JointAdapter
-    from colonnade.network import AdapterInfo
+    from colonnade.model.adapters import JointAdapter
+    from colonnade.model.network import AdapterInfo
 
     infos = [net.adapter_info[k] for k in keys]
     sources = tuple(i.source for i in infos)

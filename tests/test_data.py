@@ -5,8 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from colonnade.data import load_task_data, stratified_split
 from colonnade.errors import DataError
+from colonnade.training.data import load_task_data, stratified_split
 
 
 def _npz(path, **arrays):

@@ -15,8 +15,8 @@ import torch.nn.functional as F
 from conftest import permuted_digit_tasks, task_data
 
 import colonnade
-from colonnade.fit import evaluate, make_optimizer, task_logits
-from colonnade.spec import parse_spec
+from colonnade.model.spec import parse_spec
+from colonnade.training.fit import evaluate, make_optimizer, task_logits
 
 N_TASKS = 5
 

@@ -15,11 +15,11 @@ import yaml
 from conftest import permuted_digit_tasks, snapshot
 
 import colonnade
-from colonnade.distributed import GrowRequest, WorkerFailed, grow_distributed
-from colonnade.fit import evaluate
-from colonnade.seal import seal_workspace
-from colonnade.verify import check_workspace
-from colonnade.workspace import grow_workspace
+from colonnade.app.distributed_grow import GrowRequest, grow_distributed
+from colonnade.app.evidence import check_workspace, seal_workspace
+from colonnade.app.workspace import grow_workspace
+from colonnade.training.distributed import WorkerFailed
+from colonnade.training.fit import evaluate
 
 pytestmark = pytest.mark.skipif(not torch.distributed.is_available(),
                                 reason="this torch build has no torch.distributed")

@@ -22,8 +22,7 @@ import torch
 from test_forward_all import CONV1D, CONV2D, DENSE, VARIANTS, grown, trimmed
 
 from colonnade.cli import main
-from colonnade.digest import closure_digests
-from colonnade.export import (
+from colonnade.files.export import (
     ExportError,
     describe_layer,
     onnx_bytes,
@@ -31,11 +30,12 @@ from colonnade.export import (
     standalone_model,
     torch_bytes,
 )
-from colonnade.spec import parse_spec
-from colonnade.store import create, read_manifest, save
+from colonnade.files.store import create, read_manifest, save
+from colonnade.model.digest import closure_digests
+from colonnade.model.spec import parse_spec
 
 SPECS = {"dense": DENSE, "conv1d": CONV1D, "conv2d": CONV2D}
-STANDALONE = Path(__file__).resolve().parents[1] / "src" / "colonnade" / "standalone.py"
+STANDALONE = Path(__file__).resolve().parents[1] / "src" / "colonnade" / "files" / "standalone.py"
 
 
 def _x(net, n=29, seed=5):
@@ -202,7 +202,7 @@ def test_unknown_layers_are_refused():
 
 def test_a_sealed_task_that_moved_is_not_exported():
     from colonnade.errors import SealedError
-    from colonnade.seal import Probe, seal_task
+    from colonnade.evidence.seal import Probe, seal_task
 
     net = grown(DENSE)
     x = _x(net, n=20)

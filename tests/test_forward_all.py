@@ -15,10 +15,10 @@ import torch
 import torch.nn.functional as F
 
 from colonnade.cli import main
-from colonnade.fit import all_task_logits, task_logits
-from colonnade.network import ProgressiveNet
-from colonnade.spec import parse_spec
-from colonnade.store import create, save
+from colonnade.files.store import create, save
+from colonnade.model.network import ProgressiveNet
+from colonnade.model.spec import parse_spec
+from colonnade.training.fit import all_task_logits, task_logits
 
 DENSE = {"input": [12],
          "column": [{"dense": 16}, {"norm": "batch"}, {"act": "relu"}, {"dropout": 0.2},
@@ -74,7 +74,7 @@ def trimmed(raw: dict) -> ProgressiveNet:
 def merged(raw: dict) -> ProgressiveNet:
     """Column 2's block-1 adapters (from columns 0 and 1) folded into one joint adapter
     (merge.py) that reads both columns concatenated."""
-    from colonnade.merge import fit_joint, install_joint
+    from colonnade.trimming.merge import fit_joint, install_joint
 
     net = grown(raw)
     keys = [k for k, a in net.adapter_info.items()

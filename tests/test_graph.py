@@ -21,13 +21,14 @@ import torch
 from conftest import flop_macs  # FlopCounterMode's FLOPs / 2 (torch.utils.flop_counter)
 
 import colonnade
-from colonnade import seal
+from colonnade.app.views import render
 from colonnade.cli import main
-from colonnade.draw import GraphvizMissingError, render, to_dot
-from colonnade.graph import build_graph, column_graph
-from colonnade.network import ProgressiveNet
-from colonnade.spec import parse_spec
-from colonnade.store import create, load, save
+from colonnade.evidence import seal
+from colonnade.files.store import create, load, save
+from colonnade.model.network import ProgressiveNet
+from colonnade.model.spec import parse_spec
+from colonnade.views.draw import GraphvizMissingError, to_dot
+from colonnade.views.graph import build_graph, column_graph
 
 DOT = shutil.which("dot")
 needs_dot = pytest.mark.skipif(DOT is None, reason="graphviz's dot program is not installed "
@@ -197,7 +198,7 @@ def test_graph_reaches_exactly_the_closure(name):
 
 
 def test_pruned_and_merged_states_and_joint_adapters():
-    from colonnade.merge import fit_joint, install_joint
+    from colonnade.trimming.merge import fit_joint, install_joint
 
     net = grown(DENSE, 3)
     prune(net, "c2_b1_from_c0")
@@ -253,7 +254,7 @@ def test_colonnade_graph_is_the_callable_module():
     G = colonnade.graph(net)
     assert isinstance(G, nx.DiGraph)
     assert nx.utils.graphs_equal(G, colonnade.build_graph(net))
-    assert importlib.import_module("colonnade.graph") is colonnade.graph
+    assert importlib.import_module("colonnade.views.graph") is colonnade.graph
 
 
 def test_column_graph_bundles_pairs():

@@ -14,11 +14,13 @@ from conftest import permuted_digit_tasks, snapshot, task_data, write_npz
 from test_seal import EPOCHS, digits_spec, write_probe
 
 import colonnade
-from colonnade import seal, store
+from colonnade.app.evidence import check_workspace
+from colonnade.app.workspace import grow_workspace
 from colonnade.cli import main
 from colonnade.errors import SealedError, UsageError
-from colonnade.verify import check_workspace
-from colonnade.workspace import grow_workspace
+from colonnade.evidence import seal
+from colonnade.files import store
+from colonnade.model import guard
 
 
 @pytest.fixture(scope="module")
@@ -48,7 +50,7 @@ def ws(base, tmp_path):
 
 
 def _state_bytes(net) -> dict[str, bytes]:
-    from colonnade.digest import raw_bytes
+    from colonnade.model.digest import raw_bytes
 
     return {k: raw_bytes(v) for k, v in net.state_dict().items()}
 
@@ -94,7 +96,7 @@ def test_trimming_an_adapter_of_a_sealed_closure_is_refused(ws):
         store.save(net, ws)
     assert snapshot(ws) == files
     with pytest.raises(SealedError):
-        seal.guard(net, ["adapter:c1_b1_from_c0"], "prune")
+        guard.guard(net, ["adapter:c1_b1_from_c0"], "prune")
 
 
 @pytest.mark.parametrize("state,action", [("pruned", "prune"), ("merged", "merge")])
@@ -138,8 +140,8 @@ def test_unseal_is_the_way_round_and_is_recorded(ws, capsys):
     step = net.meta["history"][-1]
     assert step["step"] == "task_unsealed" and step["task"] == "perm1"
     assert step["reason"] == "retrain on new data" and step["time"]
-    assert not seal.is_sealed(net, "perm1") and seal.is_sealed(net, "perm0")
-    assert set(seal.sealed_tasks(net)) == {"perm0"}
+    assert not guard.is_sealed(net, "perm1") and guard.is_sealed(net, "perm0")
+    assert set(guard.sealed_tasks(net)) == {"perm0"}
     net._make_trainable(["head:perm1"])  # allowed now
     with pytest.raises(SealedError):
         net._make_trainable(["column:0"])  # still in perm0's sealed closure
@@ -152,9 +154,9 @@ def test_sealing_twice_makes_a_new_version_and_keeps_the_history(ws):
     assert main(["seal", str(ws), "--task", "perm0", "--probe",
                  str(root / "perm0_probe.npz")]) == 0
     net = store.load(ws)
-    versions = seal.seals_of(net, "perm0")
+    versions = guard.seals_of(net, "perm0")
     assert [v["version"] for v in versions] == [1, 2]
-    assert seal.latest_seal(net, "perm0")["version"] == 2
+    assert guard.latest_seal(net, "perm0")["version"] == 2
     sealed_steps = [e for e in net.meta["history"] if e["step"] == "task_sealed"]
     assert [(e["task"], e["version"]) for e in sealed_steps] == [
         ("perm0", 1), ("perm1", 1), ("perm0", 2)]
@@ -202,6 +204,6 @@ def test_a_task_in_training_cannot_be_sealed(ws):
     probe = seal.load_probe(ws.parent / "perm2_probe.npz", net, "perm2")
     with pytest.raises(UsageError, match="trainable"):
         seal.seal_task(net, "perm2", probe)
-    assert not seal.seals_of(net, "perm2") and parts
+    assert not guard.seals_of(net, "perm2") and parts
     net.freeze()
     assert seal.seal_task(net, "perm2", probe)["version"] == 1

@@ -13,10 +13,10 @@ import pytest
 import torch
 import torch.nn.functional as F
 
-from colonnade import store
 from colonnade.errors import DataError, UsageError
-from colonnade.network import ProgressiveNet
-from colonnade.spec import load_spec, parse_spec
+from colonnade.files import store
+from colonnade.model.network import ProgressiveNet
+from colonnade.model.spec import load_spec, parse_spec
 
 SPECS = Path(__file__).parent.parent / "specs"
 CATALOGUE = ["pump_spectra.yaml", "mlp_linear.yaml", "conv1d_spectra.yaml",

@@ -17,9 +17,9 @@ import pytest
 from conftest import permuted_digit_tasks, task_data
 
 import colonnade
-from colonnade import store
+from colonnade.app.views import write_report
 from colonnade.cli import main
-from colonnade.report import write_report
+from colonnade.files import store
 
 SPECS = Path(__file__).parent.parent / "specs"
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"  # the PNG signature (PNG specification, section 5.2)

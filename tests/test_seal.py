@@ -18,10 +18,13 @@ import torch
 from conftest import DIGITS_SPEC, permuted_digit_tasks, split_digit_tasks, task_data
 
 import colonnade
-from colonnade import seal, store
-from colonnade.digest import closure_digests, raw_bytes, tensor_digest
-from colonnade.fit import EVAL_BATCH
-from colonnade.verify import check_net, check_workspace
+from colonnade.app.evidence import check_workspace
+from colonnade.evidence import seal
+from colonnade.evidence.verify import check_net
+from colonnade.files import store
+from colonnade.model import guard
+from colonnade.model.digest import closure_digests, raw_bytes, tensor_digest
+from colonnade.training.fit import EVAL_BATCH
 
 EPOCHS = 3  # few epochs: these tests are about bits, not accuracy
 
@@ -60,7 +63,7 @@ def assert_all_exact(report) -> None:
 
 
 def reference_of(net, task: str) -> torch.Tensor:
-    key = seal.latest_seal(net, task)["reference"]["key"]
+    key = guard.latest_seal(net, task)["reference"]["key"]
     return net.attachments[seal.SEALS_FILE][key]
 
 
@@ -83,9 +86,9 @@ def test_every_sealed_task_checks_exact_through_growth_save_load_and_one_pass(
         # After every growth step, every task sealed so far checks exact ...
         assert_all_exact(check_net(net, probes))
         for name, probe in probes.items():  # ... and, independently, byte for byte
-            again = colonnade.fit.task_logits(net, name, probe.x, EVAL_BATCH)
+            again = colonnade.training.fit.task_logits(net, name, probe.x, EVAL_BATCH)
             assert raw_bytes(again) == raw_bytes(reference_of(net, name)), name
-    assert len(seal.sealed_tasks(net)) == len(tasks)
+    assert len(guard.sealed_tasks(net)) == len(tasks)
 
     ws = tmp_path / "ws"
     ws.mkdir()
@@ -115,7 +118,7 @@ def sealed_ws(tmp_path_factory):
     colonnade.grow(net, tasks[2]["name"], task_data(tasks[2]), epochs=1, progress=False)
     store.save(net, ws)
     # The probe path is recorded relative to the workspace, so the two move together.
-    assert seal.latest_seal(net, "perm0")["probe"]["path"] == "../perm0_probe.npz"
+    assert guard.latest_seal(net, "perm0")["probe"]["path"] == "../perm0_probe.npz"
     return root
 
 
@@ -264,7 +267,7 @@ def test_check_from_the_command_line_prints_sentences_not_tracebacks(ws, capsys)
 def _rewrite_reference(ws, task: str, delta: float) -> float:
     """Stand in for a reference computed on other hardware: shift one logit, re-record."""
     net = store.load(ws)
-    entry = seal.latest_seal(net, task)
+    entry = guard.latest_seal(net, task)
     key = entry["reference"]["key"]
     old = net.attachments[seal.SEALS_FILE][key]
     new = old.clone()
@@ -298,7 +301,7 @@ def test_a_flipped_class_is_moved_even_within_tolerance(ws):
 # ----------------------------------------------------------------------------- the record
 def test_the_seal_records_its_computation_and_check_repeats_it(ws, monkeypatch):
     net = store.load(ws)
-    entry = seal.latest_seal(net, "perm1")
+    entry = guard.latest_seal(net, "perm1")
     # conftest runs torch with one thread; EVAL_BATCH is colonnade's evaluation batch.
     assert entry["computation"] == {"batch_size": EVAL_BATCH, "threads": 1,
                                     "dtype": "float32", "device": "cpu", "call": "forward"}
@@ -329,7 +332,7 @@ def test_the_closure_digest_is_sha256_of_the_documented_serialisation(ws):
         parts = [key.encode(), str(t.dtype).encode(), struct.pack(f"<{t.dim()}Q", *t.shape),
                  t.reshape(-1).view(torch.uint8).numpy().tobytes()]
         whole.update(b"".join(struct.pack("<Q", len(p)) + p for p in parts))
-    entry = seal.latest_seal(net, "perm1")
+    entry = guard.latest_seal(net, "perm1")
     assert entry["closure"]["sha256"] == whole.hexdigest()
     assert set(entry["closure"]["tensors"]) == set(state)
     # The closure holds exactly the columns, adapters and head the task depends on.

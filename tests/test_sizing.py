@@ -11,12 +11,13 @@ import pytest
 import torch
 from conftest import flop_macs  # FlopCounterMode's FLOPs / 2 (torch.utils.flop_counter)
 
-from colonnade import costs, sizing, store
 from colonnade.cli import main
+from colonnade.costing import costs, sizing, verdicts
+from colonnade.costing.hardware import load_profile, parse_profile
 from colonnade.errors import SpecError, UsageError
-from colonnade.hardware import load_profile, parse_profile
-from colonnade.network import ProgressiveNet
-from colonnade.spec import load_spec, parse_spec
+from colonnade.files import store
+from colonnade.model.network import ProgressiveNet
+from colonnade.model.spec import load_spec, parse_spec
 
 SPECS = Path(__file__).parent.parent / "specs"
 CATALOGUE = ["pump_spectra.yaml", "mlp_linear.yaml", "conv1d_spectra.yaml",
@@ -182,11 +183,11 @@ def test_first_break_matches_numel_by_hand():
     expected = next(p.task for p, need in zip(proj.tasks, needs, strict=True) if need > budget)
     prof = parse_profile(dict(GOOD, weight_memory="300 KiB", activation_memory="1 MiB",
                               latency_budget="1 s"))
-    rows = sizing.verdicts(base, proj, prof)
+    rows = verdicts.verdicts(base, proj, prof)
     assert [v.task for v in rows] == net.tasks + [p.task for p in proj.tasks]
     assert all(v.fits for v in rows if not v.future)
-    assert sizing.first_break([v for v in rows if v.future]).task == expected
-    broken = sizing.first_break(rows)
+    assert verdicts.first_break([v for v in rows if v.future]).task == expected
+    broken = verdicts.first_break(rows)
     assert set(broken.over) == {"weight_memory"}
     assert broken.need.weight_bytes == needs[[p.task for p in proj.tasks].index(expected)]
     # Latency model: MACs / rate (stated in the docs), here 40 MMAC/s.
@@ -198,10 +199,10 @@ def test_options_are_priced():
     base = costs.ledger_of(net)
     prof = parse_profile(dict(GOOD, dtype="fp32", weight_memory="600 KiB",
                               activation_memory="1 MiB", latency_budget="1 s"))
-    opts = {o.name: o for o in sizing.price_options(net, base, 8, prof, classes=4)}
+    opts = {o.name: o for o in verdicts.price_options(net, base, 8, prof, classes=4)}
     assert {"width 0.75", "width 0.5", "width 0.25", "head only", "trim adapters",
             "dtype fp16", "dtype int8"} <= set(opts)
-    plain = sizing.verdicts(base, sizing.project(net, 8, classes=4, base=base), prof)
+    plain = verdicts.verdicts(base, sizing.project(net, 8, classes=4, base=base), prof)
     # Narrower columns, fewer bytes: the last task's weight need shrinks with the width.
     w = [opts[f"width {f}"].last.weight_bytes for f in ("0.75", "0.5", "0.25")]
     assert plain[-1].need.weight_bytes > w[0] > w[1] > w[2]
@@ -209,14 +210,14 @@ def test_options_are_priced():
     assert opts["dtype fp16"].last.weight_bytes * 2 == plain[-1].need.weight_bytes
     assert opts["dtype int8"].last.weight_bytes * 4 == plain[-1].need.weight_bytes
     # No task trimmed yet: the trim option is the bound (no future adapters at all).
-    assert opts["trim adapters"].status == ("bound" if sizing.trim_available() else "pending")
+    assert opts["trim adapters"].status == ("bound" if verdicts.trim_available() else "pending")
     bound = sizing.project(net, 8, classes=4, base=base,
                            lateral=net.spec.lateral.model_copy(update={"kind": "none"}))
     assert opts["trim adapters"].last.weight_bytes == (
         bound.tasks[-1].network.params + bound.tasks[-1].network.float_buffers) * 4
 
 
-@pytest.mark.skipif(not sizing.trim_available(), reason="trimming is not in this colonnade")
+@pytest.mark.skipif(not verdicts.trim_available(), reason="trimming is not in this colonnade")
 def test_trim_option_uses_the_measured_rate():
     net = _start(_spec("pump_spectra.yaml", "nonlinear"))
     base = costs.ledger_of(net)
@@ -224,10 +225,10 @@ def test_trim_option_uses_the_measured_rate():
     # As if a trim of task b had saved as many lateral parameters as are left: rate 1/2.
     net.meta["history"].append({"step": "adapter_pruned", "task": "b",
                                 "adapters": ["c1_b1_from_c0"], "params_saved": lateral_b})
-    assert sizing.trimmed_fraction(net, base) == pytest.approx(0.5)
+    assert verdicts.trimmed_fraction(net, base) == pytest.approx(0.5)
     prof = parse_profile(dict(GOOD, dtype="fp32", weight_memory="600 KiB",
                               activation_memory="1 MiB", latency_budget="1 s"))
-    opt = {o.name: o for o in sizing.price_options(net, base, 5, prof, classes=4)}[
+    opt = {o.name: o for o in verdicts.price_options(net, base, 5, prof, classes=4)}[
         "trim adapters"]
     assert opt.status == "available" and "50%" in opt.what
     full = sizing.project(net, 5, classes=4, base=base)

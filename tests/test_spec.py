@@ -6,8 +6,8 @@ import pytest
 import yaml
 
 from colonnade.errors import SpecError
-from colonnade.layers import plan_column
-from colonnade.spec import load_spec, parse_spec
+from colonnade.model.layers import plan_column
+from colonnade.model.spec import load_spec, parse_spec
 
 ISSUE_EXAMPLE = """
 input: [64]                 # one sample: [features], [channels, length] or [channels, height, width]

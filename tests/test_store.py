@@ -9,10 +9,10 @@ import torch
 import yaml
 from conftest import snapshot
 
-from colonnade import store
 from colonnade.errors import WorkspaceError
-from colonnade.network import ProgressiveNet
-from colonnade.spec import parse_spec
+from colonnade.files import store
+from colonnade.model.network import ProgressiveNet
+from colonnade.model.spec import parse_spec
 
 SPEC = {"input": [8], "column": [{"dense": 6}, {"norm": "batch"}, {"act": "relu"},
                                  {"dense": 4}, {"act": "relu"}],

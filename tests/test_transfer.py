@@ -18,10 +18,13 @@ from conftest import permuted_digit_tasks, task_data
 from test_seal import digits_spec, grow_and_seal, write_probe
 
 import colonnade
-from colonnade import seal, store, transfer
 from colonnade.cli import main
-from colonnade.digest import raw_bytes
-from colonnade.fit import make_optimizer, task_logits
+from colonnade.evidence import transfer
+from colonnade.files import store
+from colonnade.model import guard
+from colonnade.model.digest import raw_bytes
+from colonnade.training import validation
+from colonnade.training.fit import make_optimizer, task_logits
 
 N_TASKS = 5
 EPOCHS = 4
@@ -89,7 +92,7 @@ def test_plain_fine_tuning_forgets_and_colonnade_does_not(grown):
     fine_tuning = transfer.backward_transfer(R)
     assert fine_tuning <= -0.2, R
 
-    rec = transfer.record(store.load(ws), seal.sealed_tasks(store.load(ws)))
+    rec = transfer.record(store.load(ws), guard.sealed_tasks(store.load(ws)))
     assert rec["tasks"] == [t["name"] for t in tasks]
     assert rec["BWT"] == 0.0 and rec["BWT_sealed"] == 0.0  # exactly, not approximately
     assert rec["ACC"] > 0.8
@@ -104,7 +107,7 @@ def test_the_matrix_is_what_it_says(grown):
     T = len(tasks)
     for i, t in enumerate(tasks):
         d = task_data(t)  # the same split colonnade stored with the task
-        x, y = transfer.validation(net, t["name"])
+        x, y = validation.validation(net, t["name"])
         assert raw_bytes(x) == raw_bytes(d.x_val) and torch.equal(y, d.y_val)
         pred = task_logits(net, t["name"], d.x_val).argmax(1).numpy()
         assert R[T - 1][i] == pytest.approx(accuracy_score(d.y_val.numpy(), pred))
@@ -135,7 +138,7 @@ def test_with_laterals_the_random_network_differs_only_in_earlier_parts(grown):
     before = {k: raw_bytes(v) for k, v in net.state_dict().items()}
     rng = torch.get_rng_state()
     keep = ["column:2", "head:perm2"]
-    clone = transfer.random_init_copy(net, keep, seed=7)
+    clone = validation.random_init_copy(net, keep, seed=7)
     assert torch.equal(torch.get_rng_state(), rng)  # no side effect on the global RNG
     assert {k: raw_bytes(v) for k, v in net.state_dict().items()} == before
     after = clone.state_dict()

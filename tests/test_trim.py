@@ -5,7 +5,7 @@ Outside references: the UCI handwritten digits shipped in scikit-learn
 carries little for a new random permutation (Rusu et al. 2016 observed that much lateral
 capacity goes unused); ``numel()`` for every parameter count; torch's own
 ``torch.nn.functional.conv1d`` / ``conv2d`` and matrix products for the summed adapter
-outputs a merge must reproduce; the seal check (``verify.check_workspace``), which
+outputs a merge must reproduce; the seal check (``app_evidence.check_workspace``), which
 compares SHA-256 digests and probe logits byte for byte; and a head task sharing a
 column, whose logits must not move by a bit.
 """
@@ -21,16 +21,20 @@ import torch
 from conftest import DIGITS_SPEC, permuted_digit_tasks, snapshot, task_data
 
 import colonnade
-from colonnade import costs, merge, seal, store
-from colonnade import trim as trim_module
+from colonnade.app import evidence as app_evidence
+from colonnade.app import trim as app_trim
+from colonnade.app.evidence import check_workspace
+from colonnade.app.workspace import predict_file
 from colonnade.cli import main
-from colonnade.data import TaskData
+from colonnade.costing import costs
 from colonnade.errors import SealedError, UsageError
-from colonnade.fit import evaluate, task_logits
-from colonnade.spec import parse_spec
-from colonnade.usage import task_adapters
-from colonnade.verify import check_workspace
-from colonnade.workspace import predict_file
+from colonnade.files import store
+from colonnade.model.spec import parse_spec
+from colonnade.training.data import TaskData
+from colonnade.training.fit import evaluate, task_logits
+from colonnade.trimming import merge
+from colonnade.trimming import trim as trim_module
+from colonnade.trimming.usage import task_adapters
 
 TASKS = permuted_digit_tasks(3)
 
@@ -81,7 +85,7 @@ def sealed_workspace(folder, seal_tasks=("perm0", "perm1")):
     store.save(grown(), ws)
     files = {t["name"]: write_files(folder, t) for t in TASKS}
     for name in seal_tasks:
-        seal.seal_workspace(ws, name, files[name][1])
+        app_evidence.seal_workspace(ws, name, files[name][1])
     return ws, files
 
 
@@ -91,7 +95,7 @@ def trimmed(tmp_path_factory):
     ws, files = sealed_workspace(folder)
     before = colonnade.load(ws)
     train, test = files["perm2"]
-    report = trim_module.trim_workspace(ws, "perm2", test, finetune=5, train=train,
+    report = app_trim.trim_workspace(ws, "perm2", test, finetune=5, train=train,
                                         progress=False)
     return ws, files, before, report
 
@@ -247,7 +251,7 @@ def test_trim_merge_is_accepted_within_tolerance_and_reloads(tmp_path):
     ws, files = sealed_workspace(tmp_path, ())
     train, test = files["perm2"]
     before = colonnade.load(ws)
-    report = trim_module.trim_workspace(ws, "perm2", test, merge=True, progress=False)
+    report = app_trim.trim_workspace(ws, "perm2", test, merge=True, progress=False)
     merged = [s for s in report["steps"] if s["step"] == "adapters_merged"]
     assert merged, report
     x, y = torch.from_numpy(TASKS[2]["x_test"]), torch.from_numpy(TASKS[2]["y_test"])
@@ -320,7 +324,7 @@ def test_an_interrupted_trim_leaves_workspace_and_network_as_they_were(tmp_path,
 
     monkeypatch.setattr(trim_module, "evaluate", flaky)
     with pytest.raises(KeyboardInterrupt):
-        trim_module.trim_workspace(ws, "perm2", test, finetune=2, train=train, merge=True,
+        app_trim.trim_workspace(ws, "perm2", test, finetune=2, train=train, merge=True,
                                    progress=False)
     assert snapshot(tmp_path) == before
 

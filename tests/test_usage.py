@@ -24,10 +24,11 @@ import yaml
 from conftest import DIGITS_SPEC, permuted_digit_tasks, snapshot, task_data
 
 import colonnade
-from colonnade import store, usage
 from colonnade.cli import main
-from colonnade.fit import evaluate, task_logits
-from colonnade.spec import parse_spec
+from colonnade.files import store
+from colonnade.model.spec import parse_spec
+from colonnade.training.fit import evaluate, task_logits
+from colonnade.trimming import usage
 
 
 @functools.lru_cache(maxsize=1)

@@ -1,14 +1,20 @@
 """colonnade: grow progressive neural networks one column per task, frozen bit for bit.
 
 Progressive Neural Networks: Rusu et al. 2016, arXiv:1606.04671.
+
+The public names below are loaded on first use (PEP 562 module ``__getattr__``), so that
+``colonnade --help``, ``--version`` and ``show`` start without importing torch. The code is
+layered (see DEVELOPERS.md): model, training, evidence, costing, trimming, views, files,
+app, cli, each importing only from the layers below it.
 """
 
-__version__ = "0.1.0"
+from __future__ import annotations
 
-# colonnade.graph is the graph module, callable: colonnade.graph(net) -> networkx.DiGraph.
-from . import graph  # noqa: E402
-from .data import TaskData, load_task_data  # noqa: E402
-from .errors import (  # noqa: E402
+import importlib
+from typing import Any
+
+from ._version import __version__
+from .errors import (
     ColonnadeError,
     DataError,
     SealedError,
@@ -16,30 +22,59 @@ from .errors import (  # noqa: E402
     UsageError,
     WorkspaceError,
 )
-from .graph import build_graph  # noqa: E402
-from .growth import grow  # noqa: E402
-from .network import ProgressiveNet  # noqa: E402
-from .spec import Spec, load_spec, parse_spec  # noqa: E402
-from .store import create, load, save  # noqa: E402
 
-__all__ = [
-    "__version__",
-    "ProgressiveNet",
-    "Spec",
-    "TaskData",
-    "load_spec",
-    "parse_spec",
-    "load_task_data",
-    "create",
-    "load",
-    "save",
-    "grow",
-    "graph",
-    "build_graph",
-    "ColonnadeError",
-    "SpecError",
-    "DataError",
-    "WorkspaceError",
-    "SealedError",
-    "UsageError",
-]
+# public name -> (module, attribute); attribute None means the module itself.
+_PUBLIC: dict[str, tuple[str, str | None]] = {
+    "ProgressiveNet": ("colonnade.model.network", "ProgressiveNet"),
+    "Spec": ("colonnade.model.schema", "Spec"),
+    "load_spec": ("colonnade.model.spec", "load_spec"),
+    "parse_spec": ("colonnade.model.spec", "parse_spec"),
+    "TaskData": ("colonnade.training.data", "TaskData"),
+    "load_task_data": ("colonnade.training.data", "load_task_data"),
+    "grow": ("colonnade.training.growth", "grow"),
+    "create": ("colonnade.files.store", "create"),
+    "load": ("colonnade.files.store", "load"),
+    "save": ("colonnade.files.store", "save"),
+    "build_graph": ("colonnade.views.graph", "build_graph"),
+    # modules the README uses by name
+    "graph": ("colonnade.views.graph", None),
+    "seal": ("colonnade.evidence.seal", None),
+    "verify": ("colonnade.evidence.verify", None),
+    "transfer": ("colonnade.evidence.transfer", None),
+    "store": ("colonnade.files.store", None),
+    "costs": ("colonnade.costing.costs", None),
+    "sizing": ("colonnade.costing.sizing", None),
+    # every workspace verb, one call each
+    "new_workspace": ("colonnade.app.workspace", "new_workspace"),
+    "grow_workspace": ("colonnade.app.workspace", "grow_workspace"),
+    "describe": ("colonnade.app.show", "describe"),
+    "predict_file": ("colonnade.app.workspace", "predict_file"),
+    "seal_workspace": ("colonnade.app.evidence", "seal_workspace"),
+    "unseal_workspace": ("colonnade.app.evidence", "unseal_workspace"),
+    "check_workspace": ("colonnade.app.evidence", "check_workspace"),
+    "cost_workspace": ("colonnade.app.views", "cost_workspace"),
+    "write_report": ("colonnade.app.views", "write_report"),
+    "draw_workspace": ("colonnade.app.views", "draw_workspace"),
+    "usage_workspace": ("colonnade.app.trim", "usage_workspace"),
+    "trim_workspace": ("colonnade.app.trim", "trim_workspace"),
+    "export_task": ("colonnade.app.export", "export_task"),
+}
+
+__all__ = ["__version__", "ColonnadeError", "SpecError", "DataError", "WorkspaceError",
+           "SealedError", "UsageError", *_PUBLIC]
+
+
+def __getattr__(name: str) -> Any:
+    """Import a public name's module on first use and cache the name here."""
+    try:
+        module_name, attribute = _PUBLIC[name]
+    except KeyError:
+        raise AttributeError(f"module 'colonnade' has no attribute {name!r}") from None
+    module = importlib.import_module(module_name)
+    value = module if attribute is None else getattr(module, attribute)
+    globals()[name] = value
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(_PUBLIC))

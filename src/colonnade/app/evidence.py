@@ -1,0 +1,70 @@
+"""Workspace verbs of the evidence: ``seal``, ``unseal`` and ``check``."""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+from typing import Any
+
+from ..errors import UsageError
+from ..evidence.seal import load_probe, seal_task, unseal_task
+from ..evidence.verify import CheckReport, check_seal, probe_for
+from ..files.store import WEIGHTS
+from ..model.device import resolve_device
+from ..model.guard import sealed_tasks
+from .transaction import read_workspace, writing
+
+__all__ = ["seal_workspace", "unseal_workspace", "check_workspace"]
+
+
+def seal_workspace(folder: str | Path, task: str, probe: str | Path,
+                   device: str | None = None) -> dict[str, Any]:
+    """``colonnade seal``: seal a task of a workspace on a probe file, commit once."""
+    with writing(folder, "seal") as tx:
+        net = tx.net
+        net.task(task)
+        net.to(resolve_device(device))
+        return seal_task(net, task, load_probe(probe, net, task, relative_to=folder))
+
+
+def unseal_workspace(folder: str | Path, task: str, reason: str) -> dict[str, Any]:
+    """``colonnade unseal``: lift a task's seal with a recorded reason, commit once."""
+    with writing(folder, "unseal") as tx:
+        return unseal_task(tx.net, task, reason)
+
+
+def check_workspace(folder: str | Path, task: str | None = None,
+                    tolerance: float | None = None, probe: str | Path | None = None,
+                    ) -> CheckReport:
+    """``colonnade check``: check the newest seal of every sealed task (or of one)."""
+    if tolerance is not None and not (tolerance >= 0 and math.isfinite(tolerance)):
+        raise UsageError(f"--tolerance must be a finite number of at least 0, got {tolerance}")
+    if probe is not None and task is None:
+        raise UsageError("--probe applies to one task; pass --task NAME with it")
+    folder = Path(folder)
+    net = read_workspace(folder, strict=False)
+    mismatched = net.meta.get("_mismatched", [])
+    sealed = sealed_tasks(net)
+    if task is not None:
+        net.task(task)
+        if task not in sealed:
+            raise UsageError(f"task {task!r} has no active seal; seal it with 'colonnade seal "
+                             f"{folder} --task {task} --probe FILE'")
+        names = [task]
+    else:
+        names = list(sealed)
+    if not names:
+        raise UsageError(f"no task in {folder} is sealed, so there is nothing to check; seal "
+                         f"one with 'colonnade seal {folder} --task NAME --probe FILE'")
+    where = f" in {WEIGHTS}"
+    results = []
+    for name in names:
+        entry = sealed[name]
+        try:
+            found, problem = probe_for(folder, net, name, entry, probe)
+        except (KeyError, TypeError, AttributeError):
+            found, problem = None, None  # a malformed entry; check_seal names it
+        results.append(check_seal(net, name, entry, found, problem, tolerance, where))
+    notes = [f"{name} no longer matches the SHA-256 recorded in the manifest, so it was "
+             f"changed outside colonnade" for name in mismatched]
+    return CheckReport(str(folder), results, notes)

@@ -1,0 +1,38 @@
+"""The argument parser: one sub-command a verb, assembled from the verb groups' modules."""
+
+from __future__ import annotations
+
+import argparse
+from collections.abc import Callable
+
+from .._version import __version__
+from .cost_cmds import add_parsers as add_cost_verbs
+from .evidence_cmds import add_parsers as add_evidence_verbs
+from .export_cmds import add_parsers as add_export_verbs
+from .trim_cmds import add_parsers as add_trim_verbs
+from .workspace_cmds import add_parsers as add_workspace_verbs
+
+__all__ = ["build_parser"]
+
+# The verb groups, in the order of ``colonnade --help``.
+GROUPS = (add_workspace_verbs, add_evidence_verbs, add_export_verbs, add_cost_verbs,
+          add_trim_verbs)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="colonnade",
+        description="Grow a progressive network one column per task; earlier tasks stay "
+                    "bit-identical.")
+    parser.add_argument("--version", action="version", version=f"colonnade {__version__}")
+    sub = parser.add_subparsers(dest="verb", metavar="VERB")
+    sub.required = True
+
+    def verb(name: str, run: Callable[[argparse.Namespace], int], help: str,
+             ) -> argparse.ArgumentParser:
+        p = sub.add_parser(name, help=help, description=help)
+        p.set_defaults(run=run)
+        return p
+    for add_verbs in GROUPS:
+        add_verbs(verb)
+    return parser

@@ -1,0 +1,1 @@
+"""The evidence layer: seals, their verification, and the continual-learning record."""

@@ -1,0 +1,202 @@
+"""Seals: a task's certificate, made from its closure and a probe set.
+
+A seal records, for one task, a digest of every tensor its output depends on (its
+closure), the probe file's digest, the reference logits on the probe (kept in the
+workspace file ``seals.safetensors``) with their digest, metrics on the probe, the
+environment, and how the reference was computed (batch size, thread count, dtype,
+device), so that ``verify.check_seal`` can repeat exactly that computation: bit-exactness
+is a property of the same computation, not of the same math.
+
+A seal is a software regression check, not a safety certification.
+
+Seals live in ``net.meta["seals"][task]`` as a list of versions; sealing again appends
+a version, unsealing marks the newest one and records the reason in the history. The guard
+that refuses writes into a sealed closure is a model-level invariant and lives in
+``colonnade.model.guard``; the verbs that load, seal and commit a workspace live in
+``colonnade.app``.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import platform
+from collections.abc import Iterator, Mapping
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import torch
+
+from .._version import __version__
+from ..clock import now
+from ..errors import DataError, UsageError
+from ..model.digest import closure_digests, file_digest, record_digest, tensor_digest
+from ..model.guard import sealed_tasks, seals_of
+from ..model.network import ProgressiveNet
+from ..training.data import load_task_data
+from ..training.fit import EVAL_BATCH, task_logits
+
+__all__ = ["SEALS_FILE", "Probe", "load_probe", "probe_metrics", "environment",
+           "reference_logits", "computation_context", "seal_task", "unseal_task",
+           "entry_digest", "reference_key"]
+
+SEALS_FILE = "seals.safetensors"
+# Fields not covered by a seal entry's own digest: the digest itself, and the one field
+# that unsealing writes later.
+_UNSIGNED = ("entry_sha256", "unsealed")
+
+
+@dataclass
+class Probe:
+    """A probe set as read from its file, with the file's SHA-256."""
+
+    x: torch.Tensor
+    y: torch.Tensor
+    sha256: str
+    path: str  # as recorded in the seal (relative to the workspace where possible)
+
+
+def load_probe(path: str | Path, net: ProgressiveNet, task: str,
+               relative_to: str | Path | None = None) -> Probe:
+    """Read a labelled probe file for ``task``; every sample is kept, in file order."""
+    info = net.task(task)
+    data = load_task_data(path, net.input_shape, classes=info.classes, need_labels=True,
+                          split=False)
+    recorded = str(path)
+    if relative_to is not None:
+        try:
+            recorded = os.path.relpath(os.path.abspath(path), os.path.abspath(relative_to))
+        except ValueError:  # another drive on Windows: keep the path as given
+            pass
+    return Probe(data.x, data.y, file_digest(path), recorded)
+
+
+def probe_metrics(logits: torch.Tensor, y: torch.Tensor, classes: int) -> dict[str, Any]:
+    """Accuracy, per-class recall (None for a class absent from the probe), confusion.
+
+    Confusion rows are true classes, columns predicted classes.
+    """
+    pred = logits.argmax(1)
+    confusion = torch.zeros(classes, classes, dtype=torch.int64)
+    confusion.index_put_((y, pred), torch.ones_like(y), accumulate=True)
+    support = confusion.sum(1)
+    recall = [float(confusion[c, c]) / float(support[c]) if support[c] > 0 else None
+              for c in range(classes)]
+    total = int(support.sum())
+    return {"accuracy": float(confusion.trace()) / total if total else None,
+            "recall": recall, "confusion": confusion.tolist()}
+
+
+def environment() -> dict[str, str]:
+    """The software and hardware stack a reference was computed on."""
+    return {"colonnade": __version__, "torch": str(torch.__version__), "numpy": np.__version__,
+            "python": platform.python_version(), "platform": platform.platform(),
+            "machine": platform.machine()}
+
+
+@contextlib.contextmanager
+def computation_context(threads: int) -> Iterator[None]:
+    """Run with torch's intra-op thread count set as a seal recorded it."""
+    before = torch.get_num_threads()
+    if threads != before:
+        torch.set_num_threads(int(threads))
+    try:
+        yield
+    finally:
+        if torch.get_num_threads() != before:
+            torch.set_num_threads(before)
+
+
+def reference_logits(net: ProgressiveNet, task: str, x: torch.Tensor,
+                     computation: Mapping[str, Any]) -> torch.Tensor:
+    """The task's probe logits, computed exactly as ``computation`` says."""
+    with computation_context(int(computation["threads"])):
+        return task_logits(net, task, x, batch_size=int(computation["batch_size"]))
+
+
+def reference_key(task: str, version: int) -> str:
+    return f"{task}/v{version}"
+
+
+def entry_digest(entry: Mapping[str, Any]) -> str:
+    """A seal entry's digest over its own content: catches hand edits, not a signature."""
+    return record_digest(entry, skip=_UNSIGNED)
+
+
+# ----------------------------------------------------------------------------- seal / unseal
+def _closure_dtype(state: Mapping[str, torch.Tensor]) -> str:
+    for value in state.values():
+        if value.is_floating_point():
+            return str(value.dtype).removeprefix("torch.")
+    return "none"
+
+
+def seal_task(net: ProgressiveNet, task: str, probe: Probe,
+              batch_size: int = EVAL_BATCH) -> dict[str, Any]:
+    """Seal ``task`` on ``probe``: record the entry, keep the reference logits, log it."""
+    info = net.task(task)
+    if probe.x.shape[0] == 0:
+        raise DataError(f"{probe.path}: the probe holds no samples")
+    if probe.y.numel() != probe.x.shape[0]:
+        raise DataError(f"{probe.path}: a probe needs one label per sample to compute the "
+                        f"seal's metrics")
+    closure = net.closure(task)
+    parts = ([f"column:{k}" for k in closure.columns]
+             + [f"adapter:{a}" for a in closure.adapters] + [f"head:{task}"])
+    if any(net.is_trainable(p) for p in parts):
+        raise UsageError(f"task {task!r} still has trainable parts; call net.freeze() before "
+                         f"sealing it")
+    state = net.closure_state(task)
+    whole, per = closure_digests(state)
+    computation = {"batch_size": int(batch_size), "threads": torch.get_num_threads(),
+                   "dtype": _closure_dtype(state), "device": str(net.device),
+                   "call": "forward"}
+    logits = reference_logits(net, task, probe.x, computation).contiguous()
+    version = len(seals_of(net, task)) + 1
+    key = reference_key(task, version)
+    entry: dict[str, Any] = {
+        "version": version,
+        "task": task,
+        "time": now(),
+        "closure": {"sha256": whole, "columns": list(closure.columns),
+                    "adapters": list(closure.adapters), "head": closure.head,
+                    "tensors": per},
+        "probe": {"path": probe.path, "sha256": probe.sha256,
+                  "samples": int(probe.x.shape[0])},
+        "reference": {"file": SEALS_FILE, "key": key, "sha256": tensor_digest(key, logits),
+                      "shape": list(logits.shape),
+                      "dtype": str(logits.dtype).removeprefix("torch.")},
+        "metrics": probe_metrics(logits, probe.y, info.classes),
+        "computation": computation,
+        "environment": environment(),
+        "unsealed": None,
+    }
+    entry["entry_sha256"] = entry_digest(entry)
+    net.meta.setdefault("seals", {}).setdefault(task, []).append(entry)
+    net.attachments.setdefault(SEALS_FILE, {})[key] = logits.cpu()
+    net.meta["history"].append({"step": "task_sealed", "task": task, "version": version,
+                                "time": entry["time"], "closure_sha256": whole})
+    return entry
+
+
+def unseal_task(net: ProgressiveNet, task: str, reason: str) -> dict[str, Any]:
+    """Lift a task's active seal, recording why; the only way past the guard."""
+    net.task(task)
+    reason = (reason or "").strip()
+    if not reason:
+        raise UsageError("unsealing needs a reason; pass --reason TEXT saying why the "
+                         "task's certificate is lifted")
+    entry = sealed_tasks(net).get(task)
+    if entry is None:
+        raise UsageError(f"task {task!r} is not sealed, so there is nothing to unseal")
+    when = now()
+    entry["unsealed"] = {"time": when, "reason": reason}
+    step = {"step": "task_unsealed", "task": task, "version": entry.get("version"),
+            "time": when, "reason": reason}
+    net.meta["history"].append(step)
+    return step
+
+
+# ----------------------------------------------------------------------------- workspace

@@ -1,0 +1,250 @@
+"""Check every seal: recompute closure digests, probe digests, probe logits and metrics.
+
+Verdicts, per sealed task:
+
+* ``exact``: every closure tensor, the probe file, the stored reference and the probe
+  logits are bit-identical to the seal's;
+* ``within T``: as exact, except that the logits differ by at most T (absolute) and every
+  predicted class agrees; only with a tolerance, for checks on other hardware;
+* ``moved``: a closure tensor changed, or the logits differ beyond T, or classes flipped;
+* ``unverified``: the evidence needed to compare is changed or missing (the probe file,
+  the stored reference, the seal entry itself, or the seal's device), so nothing can be
+  said about the outputs.
+
+Every finding is one sentence. The workspace is read with ``strict=False`` so that a
+weights file changed outside colonnade can still be checked and the tensor named.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+from collections.abc import Mapping
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any
+
+import torch
+
+from ..errors import ColonnadeError
+from ..model.digest import file_digest, raw_bytes, tensor_digest
+from ..model.guard import closure_findings, sealed_tasks
+from ..model.network import ProgressiveNet
+from .seal import (
+    SEALS_FILE,
+    Probe,
+    entry_digest,
+    environment,
+    load_probe,
+    probe_metrics,
+    reference_logits,
+)
+
+__all__ = ["TaskCheck", "CheckReport", "check_seal", "check_net", "probe_for"]
+
+
+@dataclass
+class TaskCheck:
+    """The outcome of checking one task's newest seal."""
+
+    task: str
+    version: int | None
+    verdict: str
+    max_abs_diff: float | None = None
+    predictions_agree: bool | None = None
+    samples: int | None = None
+    failures: list[str] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def passed(self) -> bool:
+        return self.verdict == "exact" or self.verdict.startswith("within")
+
+    def to_dict(self) -> dict[str, Any]:
+        return asdict(self)
+
+
+@dataclass
+class CheckReport:
+    workspace: str | None
+    tasks: list[TaskCheck]
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def passed(self) -> bool:
+        return bool(self.tasks) and all(t.passed for t in self.tasks)
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"workspace": self.workspace, "passed": self.passed,
+                "tasks": [t.to_dict() for t in self.tasks], "notes": list(self.notes)}
+
+
+def _finite_max(diff: torch.Tensor) -> float:
+    if diff.numel() == 0:
+        return 0.0
+    value = float(diff.max())
+    return math.inf if math.isnan(value) else value
+
+
+def _device_for(computation: Mapping[str, Any], tolerance: float | None,
+                ) -> tuple[torch.device | None, str | None]:
+    """The device to repeat the computation on, or why it cannot be repeated here."""
+    name = str(computation.get("device", "cpu"))
+    if not name.startswith("cuda") or torch.cuda.is_available():
+        try:
+            return torch.device(name), None
+        except RuntimeError:
+            return None, f"the seal names an unknown device {name!r}"
+    if tolerance is None:
+        return None, (f"the reference was computed on {name}, which this machine does not "
+                      f"have; check on that device, or pass --tolerance to compare on cpu")
+    return torch.device("cpu"), None
+
+
+def _environment_notes(env: Any) -> list[str]:
+    if not isinstance(env, dict):
+        return []
+    here = environment()
+    notes = []
+    for key in ("torch", "python", "platform"):
+        if key in env and env[key] != here[key]:
+            notes.append(f"sealed with {key} {env[key]}, checked with {here[key]}")
+    return notes
+
+
+def check_seal(net: ProgressiveNet, task: str, entry: Mapping[str, Any],
+               probe: Probe | None, probe_problem: str | None = None,
+               tolerance: float | None = None, where: str = "") -> TaskCheck:
+    """Check one seal entry against the network and a probe already read from its file.
+
+    ``probe`` is None when the probe file could not be used; ``probe_problem`` says why.
+    """
+    version = entry.get("version") if isinstance(entry, Mapping) else None
+    result = TaskCheck(task, version, "exact")
+    moved: list[str] = []
+    evidence: list[str] = []
+    try:
+        reference, computation = entry["reference"], entry["computation"]
+        metrics, probe_entry = entry["metrics"], entry["probe"]
+        for part in (entry["closure"], reference, computation, metrics, probe_entry):
+            if not isinstance(part, dict):
+                raise TypeError("a section that is not a mapping")
+        int(computation["batch_size"]), int(computation["threads"])
+    except (KeyError, TypeError, ValueError) as exc:
+        result.verdict = "unverified"
+        result.failures = [f"the manifest's entry for seal v{version} of task {task!r} is "
+                           f"malformed (missing or bad {exc}); restore the manifest from a "
+                           f"backup"]
+        return result
+    if entry_digest(entry) != entry.get("entry_sha256"):
+        evidence.append(f"the manifest's entry for seal v{version} of task {task!r} was "
+                        f"edited outside colonnade: its own SHA-256 no longer matches")
+    m, e = closure_findings(net, task, entry, where)
+    moved += m
+    evidence += [x for x in e if not evidence]  # one sentence about an edited entry is enough
+    if task not in net.task_info:
+        result.verdict, result.failures = "moved", moved + evidence
+        return result
+
+    stored = net.attachments.get(str(reference.get("file", SEALS_FILE)), {}).get(
+        str(reference.get("key")))
+    if stored is None:
+        evidence.append(f"the reference logits of seal v{version} are missing from "
+                        f"{reference.get('file', SEALS_FILE)}; restore the workspace from a "
+                        f"backup")
+    elif tensor_digest(str(reference.get("key")), stored) != reference.get("sha256"):
+        evidence.append(f"the stored reference logits of seal v{version} (key "
+                        f"{reference.get('key')!r} in {reference.get('file', SEALS_FILE)}) "
+                        f"changed since the seal")
+        stored = None
+    if probe is None:
+        evidence.append(probe_problem or f"the probe of seal v{version} is not available")
+    elif probe.sha256 != probe_entry.get("sha256"):
+        evidence.append(f"probe file {probe.path} changed since seal v{version}: its "
+                        f"SHA-256 differs from the recorded one")
+        probe = None
+    device, problem = _device_for(computation, tolerance)
+    if problem:
+        evidence.append(problem)
+
+    if stored is not None and probe is not None and device is not None:
+        before = net.device
+        net.to(device)
+        try:
+            logits = reference_logits(net, task, probe.x, computation)
+        finally:
+            net.to(before)
+        result.samples = int(probe.x.shape[0])
+        if str(device) != str(computation.get("device")):
+            result.notes.append(f"compared on {device}; the reference was computed on "
+                                f"{computation.get('device')}")
+        if logits.shape != stored.shape:
+            moved.append(f"the probe logits have shape {list(logits.shape)}, the reference "
+                         f"{list(stored.shape)}")
+        else:
+            exact = logits.dtype == stored.dtype and raw_bytes(logits) == raw_bytes(stored)
+            diff = _finite_max((logits.double() - stored.double()).abs())
+            same = logits.argmax(1) == stored.argmax(1)
+            result.max_abs_diff = 0.0 if exact else diff
+            result.predictions_agree = bool(same.all())
+            if not exact:
+                agree = f"predicted classes agree on {int(same.sum())} of {same.numel()} samples"
+                if tolerance is None:
+                    moved.append(f"the probe logits are not bit-identical to the reference: "
+                                 f"they differ by up to {diff:.3g}; {agree}")
+                elif diff > tolerance or not result.predictions_agree:
+                    moved.append(f"the probe logits differ from the reference by up to "
+                                 f"{diff:.3g}, beyond the tolerance {tolerance:g} or with "
+                                 f"classes changed; {agree}")
+            now_metrics = probe_metrics(logits, probe.y, net.task(task).classes)
+            if now_metrics["confusion"] != metrics.get("confusion"):
+                moved.append(f"the probe metrics moved: accuracy "
+                             f"{now_metrics['accuracy']:.4f} against "
+                             f"{metrics.get('accuracy')} at seal v{version}")
+    result.notes += _environment_notes(entry.get("environment"))
+    result.failures = moved + evidence
+    if moved:
+        result.verdict = "moved"
+    elif evidence:
+        result.verdict = "unverified"
+    elif result.max_abs_diff:
+        result.verdict = f"within {tolerance:g}"
+    return result
+
+
+def check_net(net: ProgressiveNet, probes: Mapping[str, Probe], tolerance: float | None = None,
+              tasks: list[str] | None = None) -> CheckReport:
+    """Check the sealed tasks of an in-memory network on probes already read."""
+    sealed = sealed_tasks(net)
+    results = [check_seal(net, t, sealed[t], probes.get(t),
+                          None if t in probes else f"no probe was given for task {t!r}",
+                          tolerance)
+               for t in (tasks or list(sealed))]
+    return CheckReport(None, results)
+
+
+def probe_for(folder: Path, net: ProgressiveNet, task: str, entry: Mapping[str, Any],
+               override: str | Path | None) -> tuple[Probe | None, str | None]:
+    """Read the seal's probe file (or ``override``), or say in one sentence why not."""
+    version = entry.get("version")
+    recorded = (entry.get("probe") or {}).get("path") if isinstance(entry.get("probe"),
+                                                                    dict) else None
+    if override is not None:
+        path = Path(override)
+    elif recorded:
+        path = Path(recorded if os.path.isabs(recorded)
+                    else os.path.normpath(folder / recorded))
+    else:
+        return None, f"seal v{version} of task {task!r} names no probe file; pass --probe FILE"
+    if not path.is_file():
+        return None, (f"probe file {path} of seal v{version} is missing; restore it, or pass "
+                      f"--task {task} --probe FILE")
+    if file_digest(path) != entry["probe"].get("sha256"):
+        return None, (f"probe file {path} changed since seal v{version}: its SHA-256 differs "
+                      f"from the recorded one")
+    try:
+        probe = load_probe(path, net, task)
+    except ColonnadeError as exc:
+        return None, f"probe file {path} of seal v{version} cannot be used ({exc})"
+    probe.path = str(path)
+    return probe, None

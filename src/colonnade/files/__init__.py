@@ -1,0 +1,3 @@
+"""The files layer: the workspace store (atomic commit, safe loading), export, and the
+standalone loader of exported files.
+"""

@@ -1,0 +1,73 @@
+"""The network's architecture as plain data for the manifest, and the rebuild from it.
+
+A mixin of ``ProgressiveNet``: ``architecture()`` lists tasks, columns and adapters (with
+pruned and merged ones, so the record keeps them); ``from_architecture`` rebuilds the
+modules from that list, to be filled by ``load_state_dict``. Nothing here executes code
+from the manifest: every field is converted to its plain type or refused.
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict
+from typing import Any
+
+import torch.nn as nn
+
+from ..errors import WorkspaceError
+from . import adapters as adapter_kinds
+from .adapters import LateralAdapter
+from .parts import AdapterInfo, Column, ColumnInfo, TaskInfo
+from .schema import Spec
+
+__all__ = ["ArchitectureRecord"]
+
+
+class ArchitectureRecord:
+    """``architecture()`` and ``from_architecture()`` for ``ProgressiveNet``."""
+
+    def architecture(self) -> dict[str, Any]:
+        """Everything needed to rebuild the modules, as plain data for the manifest."""
+        return {
+            "tasks": [asdict(t) for t in self.task_info.values()],
+            "columns": [asdict(c) for c in self.column_info],
+            "adapters": [asdict(a) for a in self.adapter_info.values()],
+        }
+
+    @classmethod
+    def from_architecture(cls, spec: Spec, arch: dict[str, Any]) -> Any:
+        """Rebuild the modules (weights uninitialised in meaning) from ``architecture()``."""
+        net = cls(spec)
+        try:
+            for c in arch["columns"]:
+                net.columns.append(Column(spec, float(c["width"])))
+                net.column_info.append(ColumnInfo(int(c["index"]), str(c["task"]),
+                                                  float(c["width"])))
+            for t in arch["tasks"]:
+                info = TaskInfo(str(t["name"]), int(t["classes"]), int(t["column"]),
+                                str(t["mode"]))
+                net.task_info[info.name] = info
+                net.heads[info.name] = nn.Linear(net.columns[info.column].out_features,
+                                                 info.classes)
+            for a in arch["adapters"]:
+                info = AdapterInfo(**a)
+                net.adapter_info[info.key] = info
+                if info.state == "live":
+                    net.adapters[info.key] = net._rebuild_adapter(info)
+        except (KeyError, TypeError, ValueError, IndexError) as exc:
+            raise WorkspaceError(f"the manifest's network section is malformed "
+                                 f"({exc.__class__.__name__}: {exc}); restore it from a "
+                                 f"backup") from None
+        net._reindex()
+        net.freeze()
+        return net
+
+    def _rebuild_adapter(self, info: AdapterInfo) -> LateralAdapter:
+        if info.kind not in ("linear", "nonlinear"):
+            builder = getattr(adapter_kinds, "rebuild_" + info.kind, None)
+            if builder is None:
+                raise ValueError(f"unknown adapter kind {info.kind!r}")
+            return builder(self, info)
+        if info.head is not None:
+            classes = self.task_info[info.head].classes
+            return self._head_adapter(info.head, classes, info.source, info.kind)[1]
+        return self._block_adapter(info.column, info.block, info.source, info.kind)[1]

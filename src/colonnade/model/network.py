@@ -1,0 +1,420 @@
+"""The grown network: columns, lateral adapters and heads (Rusu et al. 2016).
+
+Invariant: new parts never feed old ones. Column k reads only the input and earlier
+columns, through adapters keyed by (target column, block, source column); a head reads
+its own column and, through head adapters, earlier columns. So a task's logits are a
+function of its *closure* alone, and growing the network cannot move them.
+
+Frozen parts have ``requires_grad=False`` and always run in eval mode; only the parts
+of the task being grown are trainable, and ``train()`` touches only those.
+"""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Iterator
+from typing import Any
+
+import torch
+import torch.nn as nn
+
+from ..errors import DataError, UsageError, WorkspaceError
+from .adapters import LateralAdapter, make_adapter
+from .architecture import ArchitectureRecord
+from .guard import guard, guard_state
+from .layers import Shape
+from .parts import AdapterInfo, Block, Closure, Column, ColumnInfo, TaskInfo
+from .schema import Dense, Spec
+
+__all__ = ["ProgressiveNet", "Column", "Block", "TaskInfo", "ColumnInfo", "AdapterInfo",
+           "Closure", "TASK_NAME"]
+
+TASK_NAME = re.compile(r"^[A-Za-z][A-Za-z0-9_-]{0,63}$")
+
+
+class ProgressiveNet(ArchitectureRecord, nn.Module):
+    """A progressive network grown one column or head per task.
+
+    ``net(x, task=NAME)`` returns that task's logits; ``forward_all(x)`` every task's,
+    computing each column once. ``meta`` carries what the workspace manifest records
+    besides the architecture (training records, growth history, later seals).
+    """
+
+    def __init__(self, spec: Spec) -> None:
+        super().__init__()
+        self.spec = spec
+        self.input_shape: Shape = tuple(spec.input)
+        self.columns = nn.ModuleList()
+        self.adapters = nn.ModuleDict()
+        self.heads = nn.ModuleDict()
+        self.task_info: dict[str, TaskInfo] = {}
+        self.column_info: list[ColumnInfo] = []
+        self.adapter_info: dict[str, AdapterInfo] = {}
+        self.meta: dict[str, Any] = {"history": [], "records": {}}
+        # Extra tensor files of the workspace (file name -> tensors), e.g. seal references.
+        self.attachments: dict[str, dict[str, torch.Tensor]] = {}
+        self._trainable: set[str] = set()
+        self._into: dict[tuple[int, int], list[tuple[str, int]]] = {}
+        self._into_head: dict[str, list[tuple[str, int]]] = {}
+        self._sources: dict[str, tuple[int, ...]] = {}  # live adapter -> columns it reads
+
+    # ----------------------------------------------------------------- inspection
+    @property
+    def tasks(self) -> list[str]:
+        """Task names in growth order."""
+        return list(self.task_info)
+
+    @property
+    def device(self) -> torch.device:
+        for p in self.parameters():
+            return p.device
+        return torch.device("cpu")
+
+    def task(self, name: str) -> TaskInfo:
+        if name not in self.task_info:
+            known = ", ".join(self.task_info) or "none yet"
+            raise WorkspaceError(f"no task named {name!r}; the tasks are: {known}")
+        return self.task_info[name]
+
+    def adapters_into_block(self, column: int, block: int) -> list[tuple[str, int]]:
+        """Live adapters into a block as (key, source column), in source order."""
+        return list(self._into.get((column, block), []))
+
+    def adapters_into_head(self, task: str) -> list[tuple[str, int]]:
+        return list(self._into_head.get(task, []))
+
+    def adapter_sources(self, key: str) -> tuple[int, ...]:
+        """The columns a live adapter reads: one, or several for a joint adapter."""
+        return self._sources[key]
+
+    def lateral_geometry(self, sources: tuple[int, ...], column: int | None = None,
+                         block: int | None = None, head: str | None = None,
+                         ) -> tuple[list[Shape], Shape, Any]:
+        """Source shapes, target shape and target layer spec of a lateral connection."""
+        if head is not None:
+            classes = self.task_info[head].classes
+            return ([self.columns[j].plan.out_shape for j in sources], (classes,),
+                    Dense(dense=classes))
+        dst = self.columns[column].plan.blocks[block]
+        return ([self.columns[j].plan.blocks[block - 1].out_shape for j in sources],
+                dst.pre_shape, dst.weighted)
+
+    def closure(self, task: str) -> Closure:
+        """Columns and adapters reachable from the task's head through live adapters."""
+        info = self.task(task)
+        adapters: list[str] = []
+        columns = {info.column}
+        for key, _ in self._into_head.get(task, []):
+            adapters.append(key)
+            columns.update(self._sources[key])
+        # Sources always sit to the left of their targets, so one right-to-left pass
+        # over columns collects every transitive dependency.
+        for k in range(info.column, -1, -1):
+            if k not in columns:
+                continue
+            for b in range(len(self.columns[k].blocks)):
+                for key, _ in self._into.get((k, b), []):
+                    adapters.append(key)
+                    columns.update(self._sources[key])
+        return Closure(task, tuple(sorted(columns)), tuple(sorted(adapters)), task)
+
+    def closure_state(self, task: str) -> dict[str, torch.Tensor]:
+        """The parameters and buffers a task's output depends on, by state_dict key."""
+        prefixes = self.closure(task).state_prefixes()
+        return {k: v for k, v in self.state_dict().items() if k.startswith(prefixes)}
+
+    def part_modules(self) -> Iterator[tuple[str, nn.Module]]:
+        """Every part with its id: ``column:K``, ``adapter:KEY``, ``head:TASK``."""
+        for k, col in enumerate(self.columns):
+            yield f"column:{k}", col
+        for key, ad in self.adapters.items():
+            yield f"adapter:{key}", ad
+        for name, head in self.heads.items():
+            yield f"head:{name}", head
+
+    def is_trainable(self, part: str) -> bool:
+        return part in self._trainable
+
+    @property
+    def trainable_parts(self) -> list[str]:
+        return sorted(self._trainable)
+
+    def trainable_parameters(self) -> list[nn.Parameter]:
+        return [p for part, m in self.part_modules() if part in self._trainable
+                for p in m.parameters()]
+
+    def extra_repr(self) -> str:
+        frozen = "all frozen" if not self._trainable else f"training {sorted(self._trainable)}"
+        return (f"input={list(self.input_shape)}, tasks={self.tasks}, "
+                f"lateral={self.spec.lateral.kind}, {frozen}")
+
+    # ----------------------------------------------------------------- forward
+    def _check_input(self, x: torch.Tensor) -> None:
+        if tuple(x.shape[1:]) != self.input_shape:
+            raise DataError(f"input has sample shape {list(x.shape[1:])}, but the network "
+                            f"expects {list(self.input_shape)}")
+
+    def run_columns(self, x: torch.Tensor, columns: list[int] | tuple[int, ...],
+                    given: dict[int, list[torch.Tensor]] | None = None,
+                    ) -> dict[int, list[torch.Tensor]]:
+        """Block outputs of the named columns, in increasing order.
+
+        ``given`` holds block outputs already known (for example cached outputs of frozen
+        columns); those columns are not recomputed. Every source of a live adapter into a
+        listed column must itself be listed or given.
+        """
+        outs: dict[int, list[torch.Tensor]] = dict(given or {})
+        for k in sorted(columns):
+            if k in outs:
+                continue
+            col = self.columns[k]
+            # The stem's and post's layers are called one by one rather than through their
+            # nn.Sequential: the same operations, fewer module calls for small batches.
+            h = x
+            for layer in col.stem:
+                h = layer(h)
+            hs: list[torch.Tensor] = []
+            for b, block in enumerate(col.blocks):
+                h = block.weighted(h)
+                for key, _ in self._into.get((k, b), []):
+                    h = h + self._lateral(key, outs, b - 1)
+                for layer in block.post:
+                    h = layer(h)
+                hs.append(h)
+            outs[k] = hs
+        return outs
+
+    def head_logits(self, task: str, outs: dict[int, list[torch.Tensor]]) -> torch.Tensor:
+        info = self.task_info[task]
+        logits = self.heads[task](outs[info.column][-1])
+        for key, _ in self._into_head.get(task, []):
+            logits = logits + self._lateral(key, outs, -1)
+        return logits
+
+    def _lateral(self, key: str, outs: dict[int, list[torch.Tensor]], index: int,
+                 ) -> torch.Tensor:
+        """One adapter's output; a joint adapter reads its sources concatenated."""
+        sources = self._sources[key]
+        if len(sources) == 1:
+            return self.adapters[key](outs[sources[0]][index])
+        return self.adapters[key](torch.cat([outs[s][index] for s in sources], dim=1))
+
+    def forward(self, x: torch.Tensor, task: str | None = None,
+                given: dict[int, list[torch.Tensor]] | None = None) -> torch.Tensor:
+        """The task's logits; ``given`` passes known block outputs on to ``run_columns``.
+
+        Training reuses cached outputs of frozen columns through ``given`` (cache.py), in
+        this same call, so wrappers such as DistributedDataParallel still see one forward.
+        """
+        if task is None:
+            if len(self.task_info) != 1:
+                raise UsageError("this network has several tasks; pass task=NAME")
+            task = self.tasks[0]
+        self.task(task)
+        self._check_input(x)
+        outs = self.run_columns(x, self.closure(task).columns, given)
+        return self.head_logits(task, outs)
+
+    def forward_all(self, x: torch.Tensor) -> dict[str, torch.Tensor]:
+        """Every task's logits, computing each column once."""
+        self._check_input(x)
+        outs = self.run_columns(x, range(len(self.columns)))
+        return {t: self.head_logits(t, outs) for t in self.task_info}
+
+    # ----------------------------------------------------------------- train / freeze
+    def train(self, mode: bool = True) -> ProgressiveNet:
+        """Only trainable parts follow ``mode``; frozen parts stay in eval mode."""
+        self.training = mode
+        for module in self.children():
+            module.train(False)
+        if mode:
+            for part, module in self.part_modules():
+                if part in self._trainable:
+                    module.train(True)
+        return self
+
+    def freeze(self) -> None:
+        """Freeze everything: no gradients, eval mode, nothing trainable."""
+        for p in self.parameters():
+            p.requires_grad_(False)
+        self._trainable.clear()
+        self.train(False)
+
+    def _make_trainable(self, parts: list[str]) -> None:
+        """The one place parts become trainable; everything else is frozen.
+
+        Parts inside a sealed task's closure are refused (SealedError naming the seal)
+        before anything changes.
+        """
+        guard(self, parts, "train")
+        modules = dict(self.part_modules())
+        self.freeze()
+        for part in parts:
+            for p in modules[part].parameters():
+                p.requires_grad_(True)
+            self._trainable.add(part)
+
+    # ----------------------------------------------------------------- growth
+    def _check_new_task(self, name: str, classes: int) -> None:
+        if not TASK_NAME.match(name):
+            raise UsageError(f"task name {name!r} must start with a letter and hold only "
+                             f"letters, digits, '_' or '-' (at most 64 characters)")
+        if name in self.task_info:
+            raise UsageError(f"a task named {name!r} exists already; choose another name")
+        if not isinstance(classes, int) or classes < 2:
+            raise UsageError(f"a task needs at least 2 classes, got {classes}")
+
+    def _register_adapter(self, info: AdapterInfo, module: LateralAdapter) -> None:
+        self.adapters[info.key] = module
+        self.adapter_info[info.key] = info
+        self._reindex()
+
+    def _reindex(self) -> None:
+        into: dict[tuple[int, int], list[tuple[str, int]]] = {}
+        into_head: dict[str, list[tuple[str, int]]] = {}
+        sources: dict[str, tuple[int, ...]] = {}
+        for key, info in self.adapter_info.items():
+            if info.state != "live" or key not in self.adapters:
+                continue
+            sources[key] = info.sources
+            if info.head is not None:
+                into_head.setdefault(info.head, []).append((key, info.source))
+            else:
+                into.setdefault((info.column, info.block), []).append((key, info.source))
+        for targets in (into, into_head):
+            for lst in targets.values():
+                lst.sort(key=lambda item: (item[1], item[0]))
+        self._into, self._into_head, self._sources = into, into_head, sources
+
+    def _block_adapter(self, k: int, b: int, j: int, kind: str | None = None,
+                       ) -> tuple[AdapterInfo, LateralAdapter]:
+        lat = self.spec.lateral
+        kind = kind or lat.kind
+        src, dst = self.columns[j].plan.blocks[b - 1], self.columns[k].plan.blocks[b]
+        module = make_adapter(kind, src.out_shape, dst.pre_shape, dst.weighted,
+                              lat.reduce, lat.activation)
+        return AdapterInfo(f"c{k}_b{b}_from_c{j}", kind, j, column=k, block=b), module
+
+    def _head_adapter(self, task: str, classes: int, j: int, kind: str | None = None,
+                      ) -> tuple[AdapterInfo, LateralAdapter]:
+        lat = self.spec.lateral
+        kind = kind or lat.kind
+        src = self.columns[j].plan.out_shape
+        module = make_adapter(kind, src, (classes,), Dense(dense=classes), lat.reduce,
+                              lat.activation)
+        return AdapterInfo(f"h_{task}_from_c{j}", kind, j, head=task), module
+
+    def _add_head(self, name: str, classes: int, column: int, mode: str) -> list[str]:
+        self.heads[name] = nn.Linear(self.columns[column].out_features, classes)
+        self.task_info[name] = TaskInfo(name, classes, column, mode)
+        parts = [f"head:{name}"]
+        if self.spec.lateral.kind != "none":
+            for j in range(column):
+                info, module = self._head_adapter(name, classes, j)
+                self._register_adapter(info, module)
+                parts.append(f"adapter:{info.key}")
+        return parts
+
+    def add_column(self, name: str, classes: int, width: float = 1.0, seed: int = 0,
+                   ) -> list[str]:
+        """Grow a new column, its adapters from every earlier column, and its head.
+
+        Returns the ids of the new parts, which become the only trainable ones.
+        """
+        self._check_new_task(name, classes)
+        if not (isinstance(width, (int, float)) and 0 < width <= 16):
+            raise UsageError(f"width must be a number in (0, 16], got {width}")
+        device = self.device
+        with torch.random.fork_rng(devices=[]):
+            torch.manual_seed(seed)
+            k = len(self.columns)
+            self.columns.append(Column(self.spec, float(width)))
+            self.column_info.append(ColumnInfo(k, name, float(width)))
+            parts = [f"column:{k}"]
+            if self.spec.lateral.kind != "none":
+                for b in range(1, len(self.columns[k].blocks)):
+                    for j in range(k):
+                        info, module = self._block_adapter(k, b, j)
+                        self._register_adapter(info, module)
+                        parts.append(f"adapter:{info.key}")
+            parts += self._add_head(name, classes, k, "column")
+        self.to(device)
+        self._make_trainable(parts)
+        return parts
+
+    def add_head(self, name: str, classes: int, on: str | None = None, seed: int = 0,
+                 ) -> list[str]:
+        """Grow only a head (and its head adapters) on the column of task ``on``."""
+        self._check_new_task(name, classes)
+        if not self.columns:
+            raise UsageError("the network has no column yet; grow the first task with a column")
+        column = self.task(on).column if on is not None else len(self.columns) - 1
+        device = self.device
+        with torch.random.fork_rng(devices=[]):
+            torch.manual_seed(seed)
+            parts = self._add_head(name, classes, column, "head")
+        self.to(device)
+        self._make_trainable(parts)
+        return parts
+
+    def retire_adapters(self, keys: list[str], state: str, action: str,
+                        ) -> dict[str, LateralAdapter]:
+        """Take live adapters out of the forward path, as ``pruned`` or ``merged``.
+
+        The one place adapters leave the network; adapters inside a sealed task's closure
+        are refused (SealedError naming the seal) before anything changes. Returns the
+        removed modules, so that ``reinstate_adapters`` can undo it.
+        """
+        guard(self, [f"adapter:{k}" for k in keys], action)
+        removed = {}
+        for k in keys:
+            removed[k] = self.adapters[k]
+            del self.adapters[k]
+            self.adapter_info[k].state = state
+        self._reindex()
+        return removed
+
+    def reinstate_adapters(self, modules: dict[str, LateralAdapter], order: list[str]) -> None:
+        """Put retired adapters back live; ``order`` restores the ModuleDict's key order,
+        and with it the order of ``state_dict()``."""
+        self.set_adapter_modules({**dict(self.adapters.items()), **modules}, order)
+        for k in modules:
+            self.adapter_info[k].state = "live"
+        self._reindex()
+
+    def set_adapter_modules(self, modules: dict[str, LateralAdapter], order: list[str]) -> None:
+        """Refill ``adapters`` with ``modules``: keys in ``order`` first, then the rest."""
+        for k in list(self.adapters.keys()):
+            del self.adapters[k]
+        for k in order:
+            if k in modules:
+                self.adapters[k] = modules[k]
+        for k, m in modules.items():
+            if k not in self.adapters:
+                self.adapters[k] = m
+        self._reindex()
+
+    def remove_task(self, name: str) -> None:
+        """Undo the newest growth step (used to roll back a failed grow)."""
+        if not self.tasks or self.tasks[-1] != name:
+            raise UsageError(f"only the newest task can be removed, not {name!r}")
+        guard(self, [f"head:{name}"], "remove")
+        info = self.task_info.pop(name)
+        del self.heads[name]
+        for key in [k for k, a in self.adapter_info.items()
+                    if a.head == name or (info.mode == "column" and a.column == info.column)]:
+            del self.adapter_info[key]
+            if key in self.adapters:
+                del self.adapters[key]
+        if info.mode == "column":
+            del self.columns[info.column]
+            self.column_info.pop()
+        self._reindex()
+        self.freeze()
+
+    # ----------------------------------------------------------------- persistence
+    def load_state_dict(self, state_dict: Any, strict: bool = True, assign: bool = False,
+                        ) -> Any:
+        """As ``nn.Module.load_state_dict``, but refuses to change a sealed closure."""
+        guard_state(self, state_dict)
+        return super().load_state_dict(state_dict, strict=strict, assign=assign)

@@ -1,0 +1,278 @@
+"""The spec's types: the layers of a column template, the lateral policy, training defaults.
+
+Pydantic models with unknown keys forbidden, validated once at load by ``model.spec``;
+everything inward receives these typed objects. Kept apart from the parser so that the
+layer factory (``model.layers``) can use the types while the parser uses the factory to
+check that every layer fits the shape before it.
+"""
+
+from __future__ import annotations
+
+from typing import Annotated, Any, Union
+
+from pydantic import BaseModel, BeforeValidator, ConfigDict, model_validator
+from pydantic_core import PydanticCustomError
+
+__all__ = [
+    "Spec",
+    "LateralSpec",
+    "TrainSpec",
+    "LayerSpec",
+    "Dense",
+    "Conv1d",
+    "Conv2d",
+    "Norm",
+    "Act",
+    "Dropout",
+    "Pool",
+    "Flatten",
+    "LAYER_KINDS",
+    "show_value",
+    "ACTIVATIONS",
+]
+
+ACTIVATIONS = ("relu", "gelu", "tanh", "sigmoid", "leaky_relu")
+
+
+def show_value(value: Any) -> str:
+    if isinstance(value, str):
+        return repr(value)
+    if value is None:
+        return "nothing"
+    return str(value)
+
+
+def _fail(kind: str, expected: str, value: Any) -> PydanticCustomError:
+    return PydanticCustomError(kind, "expected {expected}, got {got}",
+                               {"expected": expected, "got": show_value(value)})
+
+
+def _is_int(v: Any) -> bool:
+    return isinstance(v, int) and not isinstance(v, bool)
+
+
+def _is_number(v: Any) -> bool:
+    return isinstance(v, (int, float)) and not isinstance(v, bool)
+
+
+def _positive_int(v: Any) -> int:
+    if not _is_int(v) or v <= 0:
+        raise _fail("positive_int", "a positive integer", v)
+    return v
+
+
+def _non_negative_int(v: Any) -> int:
+    if not _is_int(v) or v < 0:
+        raise _fail("non_negative_int", "a non-negative integer", v)
+    return v
+
+
+def _positive_float(v: Any) -> float:
+    if not _is_number(v) or not v > 0 or v != v or v == float("inf"):
+        raise _fail("positive_float", "a positive number", v)
+    return float(v)
+
+
+def _non_negative_float(v: Any) -> float:
+    if not _is_number(v) or not v >= 0 or v == float("inf"):
+        raise _fail("non_negative_float", "a non-negative number", v)
+    return float(v)
+
+
+def _open_fraction(v: Any) -> float:
+    if not _is_number(v) or not 0 < v <= 1:
+        raise _fail("fraction", "a number in (0, 1]", v)
+    return float(v)
+
+
+def _probability(v: Any) -> float:
+    if not _is_number(v) or not 0 <= v < 1:
+        raise _fail("probability", "a number in [0, 1)", v)
+    return float(v)
+
+
+def _true(v: Any) -> bool:
+    if v is not True:
+        raise _fail("flatten", "true", v)
+    return True
+
+
+def _bool(v: Any) -> bool:
+    if not isinstance(v, bool):
+        raise _fail("bool", "true or false", v)
+    return v
+
+
+def _choice(*options: str):
+    def check(v: Any) -> str:
+        if not isinstance(v, str) or v not in options:
+            raise _fail("choice", "one of " + ", ".join(options), v)
+        return v
+
+    return check
+
+
+PosInt = Annotated[int, BeforeValidator(_positive_int)]
+NonNegInt = Annotated[int, BeforeValidator(_non_negative_int)]
+PosFloat = Annotated[float, BeforeValidator(_positive_float)]
+NonNegFloat = Annotated[float, BeforeValidator(_non_negative_float)]
+Fraction = Annotated[float, BeforeValidator(_open_fraction)]
+Probability = Annotated[float, BeforeValidator(_probability)]
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class Dense(_Strict):
+    """A fully connected layer with ``dense`` output features."""
+
+    dense: PosInt
+
+    @property
+    def weighted(self) -> bool:
+        return True
+
+
+class Conv1d(_Strict):
+    conv1d: PosInt
+    kernel: PosInt = 3
+    stride: PosInt = 1
+    padding: NonNegInt = 0
+
+    @property
+    def weighted(self) -> bool:
+        return True
+
+
+class Conv2d(_Strict):
+    conv2d: PosInt
+    kernel: PosInt = 3
+    stride: PosInt = 1
+    padding: NonNegInt = 0
+
+    @property
+    def weighted(self) -> bool:
+        return True
+
+
+class Norm(_Strict):
+    norm: Annotated[str, BeforeValidator(_choice("batch", "layer"))]
+
+    @property
+    def weighted(self) -> bool:
+        return False
+
+
+class Act(_Strict):
+    act: Annotated[str, BeforeValidator(_choice(*ACTIVATIONS))]
+
+    @property
+    def weighted(self) -> bool:
+        return False
+
+
+class Dropout(_Strict):
+    dropout: Probability
+
+    @property
+    def weighted(self) -> bool:
+        return False
+
+
+class Pool(_Strict):
+    pool: Annotated[str, BeforeValidator(_choice("max", "avg", "global_avg"))]
+    size: PosInt | None = None
+    stride: PosInt | None = None
+
+    @model_validator(mode="after")
+    def _size_fits_kind(self) -> Pool:
+        if self.pool == "global_avg" and (self.size is not None or self.stride is not None):
+            raise PydanticCustomError("pool", "global_avg takes no size or stride; remove them")
+        if self.pool != "global_avg" and self.size is None:
+            raise PydanticCustomError("pool", "{kind} pooling needs a size, e.g. size: 2",
+                                      {"kind": self.pool})
+        return self
+
+    @property
+    def weighted(self) -> bool:
+        return False
+
+
+class Flatten(_Strict):
+    flatten: Annotated[bool, BeforeValidator(_true)]
+
+    @property
+    def weighted(self) -> bool:
+        return False
+
+
+LayerSpec = Union[Dense, Conv1d, Conv2d, Norm, Act, Dropout, Pool, Flatten]  # noqa: UP007
+LAYER_KINDS: dict[str, type[_Strict]] = {
+    "dense": Dense,
+    "conv1d": Conv1d,
+    "conv2d": Conv2d,
+    "norm": Norm,
+    "act": Act,
+    "dropout": Dropout,
+    "pool": Pool,
+    "flatten": Flatten,
+}
+
+
+class LateralSpec(_Strict):
+    """How earlier columns feed a new one (Rusu et al. 2016, Eq. 1 linear, Eq. 2 nonlinear)."""
+
+    kind: Annotated[str, BeforeValidator(_choice("none", "linear", "nonlinear"))] = "nonlinear"
+    reduce: Fraction = 0.5
+    activation: Annotated[str, BeforeValidator(_choice(*ACTIVATIONS))] = "relu"
+
+
+class TrainSpec(_Strict):
+    """Training defaults for every task; CLI flags may override epochs."""
+
+    optimizer: Annotated[str, BeforeValidator(_choice("adamw", "adam", "sgd"))] = "adamw"
+    lr: PosFloat = 1e-3
+    weight_decay: NonNegFloat = 0.0
+    momentum: Probability | None = None
+    betas: tuple[Probability, Probability] | None = None
+    epochs: PosInt = 30
+    batch_size: PosInt = 64
+    patience: NonNegInt = 5
+    seed: NonNegInt = 0
+    val_fraction: Annotated[float, BeforeValidator(_probability)] = 0.2
+    # Reuse frozen columns' outputs across epochs (cache.py); cache_mb caps what is held in
+    # memory (MiB), the rest spills to a temporary memory-mapped file.
+    cache: Annotated[bool, BeforeValidator(_bool)] = True
+    cache_mb: NonNegFloat = 1024.0
+
+    @model_validator(mode="after")
+    def _options_fit_optimizer(self) -> TrainSpec:
+        if self.momentum is not None and self.optimizer != "sgd":
+            raise PydanticCustomError(
+                "train", "momentum applies to optimizer sgd only; remove it or use sgd")
+        if self.betas is not None and self.optimizer == "sgd":
+            raise PydanticCustomError(
+                "train", "betas apply to adam and adamw only; remove them or change optimizer")
+        return self
+
+
+class Spec(_Strict):
+    """A validated spec. ``column`` holds typed layer objects in template order."""
+
+    name: str = "network"
+    input: tuple[PosInt, ...]
+    column: tuple[Any, ...]
+    lateral: LateralSpec = LateralSpec()
+    train: TrainSpec = TrainSpec()
+
+    def to_dict(self) -> dict[str, Any]:
+        """The spec in its YAML form, so a manifest stores what a user would write."""
+        return {
+            "name": self.name,
+            "input": list(self.input),
+            "column": [layer.model_dump(exclude_none=True) for layer in self.column],
+            "lateral": self.lateral.model_dump(),
+            "train": {k: (list(v) if isinstance(v, tuple) else v)
+                      for k, v in self.train.model_dump(exclude_none=True).items()},
+        }

@@ -1,0 +1,124 @@
+"""The spec: a YAML blueprint of the network, validated once at load.
+
+Every error names the field path (``column[2].kernel``) and says what was expected,
+because a spec is written by hand and a bare pydantic dump helps nobody. The types are
+in ``model.schema``; this module reads YAML safely, validates, and checks that every layer
+fits the shape before it (through the layer factory's shape inference).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+import yaml
+from pydantic import ValidationError
+
+from ..errors import SpecError
+from .layers import template_shapes
+from .schema import LAYER_KINDS, LateralSpec, LayerSpec, Spec, TrainSpec, show_value
+
+__all__ = ["load_spec", "parse_spec"]
+
+
+def _path(prefix: str, loc: tuple[Any, ...]) -> str:
+    out = prefix
+    for part in loc:
+        if isinstance(part, int):
+            out += f"[{part}]"
+        else:
+            out += f".{part}" if out else str(part)
+    return out or "spec"
+
+
+def _sentence(err: ValidationError, prefix: str, allowed: list[str] | None = None) -> str:
+    first = err.errors(include_url=False)[0]
+    loc = tuple(p for p in first["loc"] if not (isinstance(p, str) and "[" in p))
+    path = _path(prefix, loc)
+    kind = first["type"]
+    if kind == "extra_forbidden":
+        hint = f"; allowed keys here are {', '.join(allowed)}" if allowed else ""
+        return f"{path}: unknown key{hint}"
+    if kind == "missing":
+        return f"{path}: required but missing"
+    if kind in ("tuple_type", "list_type"):
+        return f"{path}: expected a list, got {show_value(first.get('input'))}"
+    if kind in ("too_short", "too_long"):
+        return f"{path}: {first['msg'][0].lower() + first['msg'][1:]}"
+    if kind == "model_type" or kind == "dict_type":
+        return f"{path}: expected a mapping of keys to values, got {show_value(first.get('input'))}"
+    return f"{path}: {first['msg']}"
+
+
+def _parse_layer(raw: Any, index: int) -> LayerSpec:
+    where = f"column[{index}]"
+    if not isinstance(raw, dict) or not raw:
+        raise SpecError(f"{where}: expected a layer such as {{dense: 64}}, got {show_value(raw)}")
+    kinds = [k for k in raw if k in LAYER_KINDS]
+    if len(kinds) != 1:
+        names = ", ".join(LAYER_KINDS)
+        found = "none" if not kinds else " and ".join(kinds)
+        raise SpecError(f"{where}: expected exactly one layer kind ({names}), found {found}")
+    model = LAYER_KINDS[kinds[0]]
+    try:
+        return model.model_validate(raw)
+    except ValidationError as err:
+        raise SpecError(_sentence(err, where, list(model.model_fields))) from None
+
+
+def parse_spec(raw: Any) -> Spec:
+    """Validate a spec given as plain data (what ``yaml.safe_load`` returns)."""
+    if not isinstance(raw, dict):
+        raise SpecError(f"spec: expected a mapping with input, column, lateral and train, "
+                        f"got {show_value(raw)}")
+    known = list(Spec.model_fields)
+    for key in raw:
+        if key not in known:
+            raise SpecError(f"{key}: unknown key; allowed top-level keys are {', '.join(known)}")
+    if "column" not in raw:
+        raise SpecError("column: required but missing")
+    if not isinstance(raw["column"], list) or not raw["column"]:
+        raise SpecError(f"column: expected a non-empty list of layers, "
+                        f"got {show_value(raw['column'])}")
+    layers = tuple(_parse_layer(layer, i) for i, layer in enumerate(raw["column"]))
+    data = dict(raw, column=layers)
+    if isinstance(data.get("input"), list):
+        data["input"] = tuple(data["input"])
+    if isinstance(data.get("train"), dict) and isinstance(data["train"].get("betas"), list):
+        data["train"] = dict(data["train"], betas=tuple(data["train"]["betas"]))
+    try:
+        spec = Spec.model_validate(data)
+    except ValidationError as err:
+        first = err.errors(include_url=False)[0]["loc"]
+        section = first[0] if first else None
+        allowed = None
+        if section == "lateral":
+            allowed = list(LateralSpec.model_fields)
+        elif section == "train":
+            allowed = list(TrainSpec.model_fields)
+        raise SpecError(_sentence(err, "", allowed)) from None
+    if not 1 <= len(spec.input) <= 3:
+        raise SpecError(f"input: expected [features], [channels, length] or "
+                        f"[channels, height, width], got {list(spec.input)}")
+    if not any(layer.weighted for layer in spec.column):
+        raise SpecError("column: needs at least one dense, conv1d or conv2d layer")
+    template_shapes(spec)  # raises SpecError naming the first layer that does not fit
+    return spec
+
+
+def load_spec(path: str | Path) -> Spec:
+    """Read and validate a spec file; YAML is parsed with the safe loader only."""
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise SpecError(f"{path}: no such spec file") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise SpecError(f"{path}: cannot read the spec file ({exc.__class__.__name__})") from None
+    try:
+        raw = yaml.safe_load(text)
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        where = f" at line {mark.line + 1}" if mark is not None else ""
+        raise SpecError(f"{path}: not valid YAML{where}; check indentation and brackets") from None
+    return parse_spec(raw)

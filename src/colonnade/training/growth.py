@@ -1,0 +1,139 @@
+"""One growth step: add a column or a head for a new task, train it, freeze it, record it.
+
+If anything fails or is interrupted, the new parts are removed again, so the in-memory
+network is as it was; the workspace on disk is only written by ``store.save`` after.
+"""
+
+from __future__ import annotations
+
+import copy
+import math
+from typing import Any
+
+from ..clock import now
+from ..errors import UsageError
+from ..model.device import resolve_device
+from ..model.network import ProgressiveNet
+from . import validation as transfer
+from .data import TaskData
+from .fit import Transform, evaluate, fit_task
+
+__all__ = ["grow"]
+
+
+def _count(net: ProgressiveNet, parts: list[str]) -> int:
+    modules = dict(net.part_modules())
+    return sum(p.numel() for part in parts for p in modules[part].parameters())
+
+
+def grow(net: ProgressiveNet, task: str, data: TaskData, mode: str = "column",
+         on: str | None = None, width: float = 1.0, epochs: int | None = None,
+         device: str | None = None, progress: bool = True, transform: Transform | None = None,
+         cache: bool | None = None, cache_mb: float | None = None,
+         target: float | None = None, ddp: Any = None) -> dict[str, Any]:
+    """Grow ``task`` on ``net`` and train it on ``data``; returns the history entry.
+
+    ``mode="auto"`` grows only a head when that reaches ``target`` validation accuracy,
+    else a column (``_grow_auto``).
+
+    The task's seed is the spec's seed plus the number of tasks before it, so each task
+    is reproducible on its own and tasks do not share initial weights. ``transform``,
+    ``cache``, ``cache_mb`` and ``ddp`` (data-parallel training, distributed.py) go to
+    ``fit_task``.
+    """
+    if mode == "auto":
+        return _grow_auto(net, task, data, target, on=on, width=width, epochs=epochs,
+                          device=device, progress=progress, transform=transform, cache=cache,
+                          cache_mb=cache_mb, ddp=ddp)
+    if target is not None:
+        raise UsageError("--target applies to --mode auto only")
+    if mode not in ("column", "head"):
+        raise UsageError(f"unknown growth mode {mode!r}; use column, head or auto")
+    if mode == "column" and on is not None:
+        raise UsageError("--on applies to --mode head or auto only")
+    if mode == "head" and width != 1.0:
+        raise UsageError("--width applies to --mode column only")
+    dev = resolve_device(device)
+    seed = net.spec.train.seed + len(net.tasks)
+    net.to(dev)
+    if mode == "column":
+        parts = net.add_column(task, data.classes, width=width, seed=seed)
+    else:
+        parts = net.add_head(task, data.classes, on=on, seed=seed)
+    try:
+        # R[i-1][i] and the random-network accuracy b[i], before training (transfer.py).
+        before = transfer.before_training(net, task, parts, data, seed)
+        record = fit_task(net, task, data, net.spec.train, epochs=epochs, seed=seed,
+                          progress=progress, transform=transform, cache=cache,
+                          cache_mb=cache_mb, ddp=ddp)
+    except BaseException:
+        net.remove_task(task)
+        raise
+    finally:
+        net.freeze()
+    acc, loss = evaluate(net, task, data.x_val, data.y_val)
+    info = net.task(task)
+    entry = {
+        "step": "column_added" if mode == "column" else "head_added",
+        "task": task,
+        "time": now(),
+        "column": info.column,
+        "width": float(width),
+        "classes": data.classes,
+        "params_added": _count(net, parts),
+        "val_accuracy": acc,
+        "device": str(dev),
+    }
+    transfer.after_training(net, task, data, entry, before)  # row i of R; keeps x_val, y_val
+    net.meta["history"].append(entry)
+    net.meta["records"][task] = {
+        "train": record.to_dict(),
+        "data": {"source": data.source, "n_train": data.n_train, "n_val": data.n_val},
+        "val_accuracy": acc,
+        "val_loss": loss,
+    }
+    return entry
+
+
+def _grow_auto(net: ProgressiveNet, task: str, data: TaskData, target: float | None,
+               on: str | None = None, width: float = 1.0, **kw: Any) -> dict[str, Any]:
+    """Grow only when needed: a head on a frozen column if it reaches ``target``, else a column.
+
+    The head is tried on the column of ``on`` (default: the newest column). Below the
+    target it is rolled back (``remove_task``, and the records it added) and a full
+    column is grown with the seed it would have had anyway. The history entry says which
+    was chosen and why, under ``auto``.
+    """
+    if target is None or not (isinstance(target, (int, float)) and math.isfinite(target)
+                              and 0 < target <= 1):
+        raise UsageError(f"--mode auto needs --target ACCURACY, a validation accuracy in "
+                         f"(0, 1] such as 0.9, got {target}")
+    if data.n_val == 0:
+        raise UsageError("--mode auto compares validation accuracy with --target, but the "
+                         "data has no validation samples; pass --val FILE")
+    if not net.columns:
+        entry = grow(net, task, data, mode="column", width=width, **kw)
+        entry["auto"] = {"chose": "column", "target": float(target), "head_val_accuracy": None,
+                         "reason": "the network has no frozen column to carry a head yet"}
+        return entry
+    meta = copy.deepcopy(net.meta)
+    attachments = {name: dict(tensors) for name, tensors in net.attachments.items()}
+    head = grow(net, task, data, mode="head", on=on, **kw)
+    acc, column = head["val_accuracy"], head["column"]
+    if acc >= target:
+        head["auto"] = {"chose": "head", "target": float(target), "head_val_accuracy": acc,
+                        "reason": f"a head on frozen column {column} reached validation "
+                                  f"accuracy {acc:.4f}, at least the target {target:g}"}
+        return head
+    net.remove_task(task)
+    net.meta.clear()
+    net.meta.update(meta)
+    net.attachments.clear()
+    net.attachments.update(attachments)
+    entry = grow(net, task, data, mode="column", width=width, **kw)
+    entry["auto"] = {"chose": "column", "target": float(target), "head_val_accuracy": acc,
+                     "head_column": column,
+                     "reason": f"a head on frozen column {column} reached only validation "
+                               f"accuracy {acc:.4f}, below the target {target:g}, so it was "
+                               f"rolled back and a column grown"}
+    return entry

@@ -1,0 +1,89 @@
+"""Measuring a growth step for the continual-learning record.
+
+Each task's validation set is kept in the workspace (``validation.safetensors``) so that
+every later growth step can evaluate every task again (row i of the accuracy matrix R),
+and each new task is also evaluated before it is trained and on a network whose earlier
+parts are re-initialised (R[i-1][i] and b[i]). The metrics that read these figures back
+(ACC, BWT, FWT; Lopez-Paz & Ranzato 2017) are in ``colonnade.evidence.transfer``.
+"""
+
+from __future__ import annotations
+
+import copy
+from collections.abc import Iterable
+from typing import Any
+
+import torch
+
+from ..model.network import ProgressiveNet
+from .data import TaskData
+from .fit import evaluate
+
+__all__ = ["VAL_FILE", "store_validation", "validation", "accuracies", "random_init_copy",
+           "before_training", "after_training"]
+
+VAL_FILE = "validation.safetensors"
+
+
+def store_validation(net: ProgressiveNet, task: str, x: torch.Tensor, y: torch.Tensor) -> None:
+    files = net.attachments.setdefault(VAL_FILE, {})
+    files[f"{task}/x"] = x.detach().cpu().contiguous()
+    files[f"{task}/y"] = y.detach().cpu().contiguous()
+
+
+def validation(net: ProgressiveNet, task: str) -> tuple[torch.Tensor, torch.Tensor] | None:
+    files = net.attachments.get(VAL_FILE, {})
+    if f"{task}/x" not in files or f"{task}/y" not in files:
+        return None
+    return files[f"{task}/x"], files[f"{task}/y"]
+
+
+def accuracies(net: ProgressiveNet) -> dict[str, float | None]:
+    """Every task's accuracy on its stored validation data (None where none is stored)."""
+    out: dict[str, float | None] = {}
+    for task in net.tasks:
+        val = validation(net, task)
+        out[task] = None if val is None or val[1].numel() == 0 else evaluate(net, task, *val)[0]
+    return out
+
+
+def random_init_copy(net: ProgressiveNet, keep: Iterable[str], seed: int) -> ProgressiveNet:
+    """A copy whose parts, except ``keep``, are freshly initialised (seeded, no side effect)."""
+    keep = set(keep)
+    saved = net.attachments, net.meta
+    net.attachments, net.meta = {}, {"history": [], "records": {}}
+    try:
+        clone = copy.deepcopy(net)
+    finally:
+        net.attachments, net.meta = saved
+    devices = [net.device.index or 0] if net.device.type == "cuda" else []
+    with torch.random.fork_rng(devices=devices), torch.no_grad():
+        torch.manual_seed(seed)
+        for part, module in clone.part_modules():
+            if part in keep:
+                continue
+            for m in module.modules():
+                reset = getattr(m, "reset_parameters", None)
+                if callable(reset):
+                    reset()
+    clone.eval()
+    return clone
+
+
+def before_training(net: ProgressiveNet, task: str, parts: Iterable[str], data: TaskData,
+                    seed: int) -> dict[str, float | None]:
+    """R[i-1][i] and b[i] for a task whose new ``parts`` were just added, untrained."""
+    if data.n_val == 0:
+        return {"before_training": None, "random_init": None}
+    before = evaluate(net, task, data.x_val, data.y_val)[0]
+    clone = random_init_copy(net, parts, seed)
+    return {"before_training": before,
+            "random_init": evaluate(clone, task, data.x_val, data.y_val)[0]}
+
+
+def after_training(net: ProgressiveNet, task: str, data: TaskData, entry: dict[str, Any],
+                   before: dict[str, float | None]) -> None:
+    """Keep the task's validation data and add row i of R to the growth entry."""
+    store_validation(net, task, data.x_val, data.y_val)
+    entry["val_accuracies"] = accuracies(net)
+    entry.update(before)

@@ -1,0 +1,1 @@
+"""The trimming layer: adapter usage scores, pruning and merging of unsealed parts."""

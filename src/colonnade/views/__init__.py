@@ -1,0 +1,1 @@
+"""The views layer: the graph, diagrams, plots and reports. They read; they never write."""
