@@ -111,3 +111,33 @@ def snapshot(folder) -> dict[str, bytes]:
 
     return {str(p.relative_to(folder)): p.read_bytes()
             for p in sorted(Path(folder).rglob("*")) if p.is_file()}
+
+
+def called_tensors(net: torch.nn.Module, run) -> set[str]:
+    """State keys of every module torch calls while ``run()`` runs, found by forward hooks.
+
+    Source: torch's own forward hooks on the modules actually called, not the network's
+    bookkeeping. A parameter or buffer counts when its module or a module above it (below
+    the network itself) was called; adapters run their inner maps through ``.forward``.
+    """
+    called: set[str] = set()
+    handles = [m.register_forward_hook(lambda mod, i, o, name=name: called.add(name))
+               for name, m in net.named_modules() if name]
+    try:
+        with torch.no_grad():
+            run()
+    finally:
+        for h in handles:
+            h.remove()
+    keys = set()
+    for key in net.state_dict():
+        parts = key.split(".")[:-1]
+        if any(".".join(parts[:i]) in called for i in range(1, len(parts) + 1)):
+            keys.add(key)
+    return keys
+
+
+def called_params(net: torch.nn.Module, run) -> int:
+    """``numel()`` of the parameters of the modules torch calls while ``run()`` runs."""
+    params = dict(net.named_parameters())
+    return sum(params[k].numel() for k in called_tensors(net, run) if k in params)

@@ -24,6 +24,7 @@ import torch.multiprocessing as mp
 from ..errors import UsageError
 from ..files.store import load, save
 from ..model.device import resolve_device
+from ..training.checks import check_training_data
 from ..training.data import TaskData, load_task_data
 from ..training.distributed import (
     DistributedHooks,
@@ -71,6 +72,9 @@ def run_rank(rank: int, world: int, request: GrowRequest, staging: str | None,
         data = load_task_data(request.train, net.input_shape, classes=request.classes,
                               val_path=request.val, val_fraction=net.spec.train.val_fraction,
                               seed=net.spec.train.seed)
+        found = check_training_data(data.y, data.y_val, data.classes, data.source,
+                                    classes_given=request.classes is not None,
+                                    warn=rank == 0)  # on the whole data, not a shard
         rows = shard_rows(data.n_train, rank, world, net.spec.train.seed)
         shard = TaskData(data.x[rows], data.y[rows], data.x_val, data.y_val, data.classes,
                          data.source)
@@ -79,6 +83,8 @@ def run_rank(rank: int, world: int, request: GrowRequest, staging: str | None,
                      width=request.width, epochs=request.epochs, device=str(device),
                      progress=progress and rank == 0, cache=request.cache,
                      cache_mb=request.cache_mb, target=request.target, ddp=ddp)
+        if found.warnings:
+            entry["data_warnings"] = list(found.warnings)
         entry["distributed"] = {"ranks": world, "backend": backend,
                                 "rows_per_rank": int(rows.numel()),
                                 "batch_per_rank": ddp.batch_size(net.spec.train.batch_size)}

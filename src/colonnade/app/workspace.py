@@ -67,7 +67,8 @@ def _grow(net: ProgressiveNet, folder: str | Path, task: str, train: str | Path,
     data = load_task_data(train, net.input_shape, classes=classes, val_path=val,
                           val_fraction=net.spec.train.val_fraction, seed=net.spec.train.seed)
     entry = grow(net, task, data, mode=mode, on=on, width=width, epochs=epochs, device=device,
-                 progress=progress, cache=cache, cache_mb=cache_mb, target=target)
+                 progress=progress, cache=cache, cache_mb=cache_mb, target=target,
+                 classes_given=classes is not None)
     return entry
 
 

@@ -10,7 +10,9 @@ from __future__ import annotations
 
 import os
 import sys
+import warnings
 from collections.abc import Sequence
+from typing import Any
 
 from ..errors import ColonnadeError
 from .parser import build_parser
@@ -18,11 +20,19 @@ from .parser import build_parser
 __all__ = ["main", "build_parser"]
 
 
+def _one_line_warning(message: Warning | str, category: type[Warning], filename: str,
+                      lineno: int, file: Any = None, line: str | None = None) -> None:
+    """A warning as one line, the way errors print, without the source line."""
+    print(f"colonnade: warning: {message}", file=sys.stderr if file is None else file)
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     try:
-        return args.run(args)
+        with warnings.catch_warnings():
+            warnings.showwarning = _one_line_warning
+            return args.run(args)
     except ColonnadeError as exc:
         print(f"colonnade: error: {exc}", file=sys.stderr)
         return exc.exit_code

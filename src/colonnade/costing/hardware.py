@@ -13,11 +13,11 @@ import re
 from pathlib import Path
 from typing import Annotated, Any
 
-import yaml
 from pydantic import BaseModel, BeforeValidator, ConfigDict, ValidationError
 from pydantic_core import PydanticCustomError
 
 from ..errors import SpecError
+from ..model.yamlfile import load_yaml
 from .costs import DTYPE_BYTES
 
 __all__ = ["HardwareProfile", "load_profile", "parse_profile", "profile_dirs", "MEMORY_UNITS",
@@ -162,14 +162,10 @@ def load_profile(name_or_path: str | Path) -> HardwareProfile:
             raise SpecError(f"{name_or_path}: no such hardware profile file or name{hint}")
         path = found[0]
     try:
-        raw = yaml.safe_load(path.read_text(encoding="utf-8"))
+        text = path.read_text(encoding="utf-8")
     except (OSError, UnicodeDecodeError) as exc:
         raise SpecError(f"{path}: cannot read the profile ({exc.__class__.__name__})") from None
-    except yaml.YAMLError as exc:
-        mark = getattr(exc, "problem_mark", None)
-        at = f" at line {mark.line + 1}" if mark is not None else ""
-        raise SpecError(f"{path}: not valid YAML{at}; check indentation and quotes") from None
-    return parse_profile(raw, str(path))
+    return parse_profile(load_yaml(text, str(path), SpecError), str(path))
 
 
 def format_rate(n: float) -> str:

@@ -26,7 +26,7 @@ from dataclasses import dataclass, field
 import torch
 
 from ..errors import UsageError
-from ..model.layers import Shape, layer_output_shape, plan_column
+from ..model.layers import Shape, check_width, layer_output_shape, plan_column
 from ..model.network import ProgressiveNet
 from ..model.schema import Conv1d, Conv2d, Dense, LateralSpec, LayerSpec, Norm, Spec
 from .costs import (
@@ -258,6 +258,7 @@ def project(net: ProgressiveNet, n: int, width: float | None = None, mode: str =
     w = float(width) if width is not None else default_width(net)
     if not 0 < w <= 16:
         raise UsageError(f"width must be a number in (0, 16], got {w}")
+    check_width(net.spec, w)
     c = _newest_classes(net, classes)
     lat = lateral or net.spec.lateral
     spec = net.spec

@@ -13,6 +13,8 @@ from __future__ import annotations
 import importlib.util
 from dataclasses import dataclass
 
+from ..errors import UsageError
+from ..model.layers import check_width
 from ..model.network import ProgressiveNet
 from .costs import DTYPE_BYTES, NetworkCost
 from .hardware import HardwareProfile
@@ -138,6 +140,10 @@ def price_options(net: ProgressiveNet, base: NetworkCost, n: int, profile: Hardw
     options = []
     for factor in (0.75, 0.5, 0.25):
         nw = w * factor
+        try:
+            check_width(net.spec, nw)
+        except UsageError:
+            continue  # a layer would have no units left at this width
         options.append(run(f"width {nw:g}", f"grow the future columns at width {nw:g} "
                            f"({factor:.0%} of {w:g})", width=nw))
     if net.columns:

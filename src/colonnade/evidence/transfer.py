@@ -21,7 +21,9 @@ How colonnade fills them in for a progressive network (our definitions):
   the trained columns give a new task before it learns. Without laterals it is 0.
 
 Frozen closures cannot move, so BWT is exactly 0.0 over tasks whose closures were not
-trimmed; over sealed tasks it is exactly 0.0 by the guard.
+trimmed; over sealed tasks it is exactly 0.0 by the guard. A trim, merge, fine-tune or
+retrain of a task records its accuracy again (a ``task_remeasured`` step); that figure
+replaces the task's entry in the newest row, so ACC and BWT show the task as it is.
 """
 
 from __future__ import annotations
@@ -33,6 +35,9 @@ __all__ = ["average_accuracy", "backward_transfer", "forward_transfer", "accurac
            "record", "record_of"]
 
 GROWTH_STEPS = ("column_added", "head_added")
+# Steps that re-measure a task after a change to its parts (trim, merge, fine-tune,
+# retrain), written by training.validation.remeasure.
+CHANGE_STEPS = ("task_remeasured",)
 
 Matrix = Sequence[Sequence[float | None]]
 
@@ -76,20 +81,27 @@ def accuracy_matrix(net: Any) -> tuple[list[str], list[list[float | None]],
 def _matrix(history: list[Any], tasks_now: Iterable[str],
             ) -> tuple[list[str], list[list[float | None]], list[float | None]]:
     tasks_now = set(tasks_now)
-    steps = [e for e in history
-             if isinstance(e, dict) and e.get("step") in GROWTH_STEPS
-             and e.get("task") in tasks_now]
+    history = [e for e in history if isinstance(e, dict) and e.get("task") in tasks_now]
+    steps = [e for e in history if e.get("step") in GROWTH_STEPS]
     tasks = [e["task"] for e in steps]
     T = len(tasks)
     R: list[list[float | None]] = [[None] * T for _ in range(T)]
     b: list[float | None] = [None] * T
-    for i, e in enumerate(steps):
-        row = e.get("val_accuracies") or {}
-        for j in range(i + 1):
-            R[i][j] = row.get(tasks[j])
-        if i > 0:
-            R[i - 1][i] = e.get("before_training")
-        b[i] = e.get("random_init")
+    index = {t: n for n, t in enumerate(tasks)}
+    i = -1
+    for e in history:
+        if e.get("step") in GROWTH_STEPS:
+            i += 1
+            row = e.get("val_accuracies") or {}
+            for j in range(i + 1):
+                R[i][j] = row.get(tasks[j])
+            if i > 0:
+                R[i - 1][i] = e.get("before_training")
+            b[i] = e.get("random_init")
+        elif e.get("step") in CHANGE_STEPS and 0 <= index.get(e["task"], T) <= i:
+            # A change after growth step i: row i holds the task as it is now; the figure
+            # it replaces stays in the history (the step's val_accuracy_before).
+            R[i][index[e["task"]]] = e.get("val_accuracy")
     return tasks, R, b
 
 

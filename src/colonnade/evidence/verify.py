@@ -167,6 +167,7 @@ def check_seal(net: ProgressiveNet, task: str, entry: Mapping[str, Any],
     if problem:
         evidence.append(problem)
 
+    bitwise = False
     if stored is not None and probe is not None and device is not None:
         before = net.device
         net.to(device)
@@ -187,6 +188,7 @@ def check_seal(net: ProgressiveNet, task: str, entry: Mapping[str, Any],
             same = logits.argmax(1) == stored.argmax(1)
             result.max_abs_diff = 0.0 if exact else diff
             result.predictions_agree = bool(same.all())
+            bitwise = exact
             if not exact:
                 agree = f"predicted classes agree on {int(same.sum())} of {same.numel()} samples"
                 if tolerance is None:
@@ -207,7 +209,9 @@ def check_seal(net: ProgressiveNet, task: str, entry: Mapping[str, Any],
         result.verdict = "moved"
     elif evidence:
         result.verdict = "unverified"
-    elif result.max_abs_diff:
+    elif not bitwise:
+        # Equal in value is not equal in bits (-0.0 against +0.0, NaN payloads): "exact"
+        # is kept for byte-identical logits; anything else passed only the tolerance.
         result.verdict = f"within {tolerance:g}"
     return result
 

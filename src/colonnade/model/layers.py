@@ -13,7 +13,7 @@ from dataclasses import dataclass
 
 import torch.nn as nn
 
-from ..errors import SpecError
+from ..errors import SpecError, UsageError
 from .schema import Act, Conv1d, Conv2d, Dense, Dropout, Flatten, LayerSpec, Norm, Pool, Spec
 
 __all__ = [
@@ -25,6 +25,7 @@ __all__ = [
     "build_layer",
     "make_activation",
     "scaled_width",
+    "check_width",
     "layer_output_shape",
 ]
 
@@ -47,6 +48,30 @@ def make_activation(name: str) -> nn.Module:
 def scaled_width(units: int, width: float) -> int:
     """Features or channels of a weighted layer in a column of the given width factor."""
     return max(1, int(round(units * width)))
+
+
+def _units(layer: LayerSpec) -> int | None:
+    if isinstance(layer, Dense):
+        return layer.dense
+    if isinstance(layer, Conv1d):
+        return layer.conv1d
+    if isinstance(layer, Conv2d):
+        return layer.conv2d
+    return None
+
+
+def check_width(spec: Spec, width: float) -> None:
+    """Refuse a width factor that would leave a weighted layer with no units at all.
+
+    ``scaled_width`` rounds to the nearest whole unit (Python's ``round``), so a layer of
+    ``u`` units keeps at least one only when ``u * width`` rounds to 1 or more.
+    """
+    for i, layer in enumerate(spec.column):
+        units = _units(layer)
+        if units is not None and int(round(units * width)) < 1:
+            smallest = min(u for u in map(_units, spec.column) if u is not None)
+            raise UsageError(f"--width {width:g} leaves column[{i}] ({units} units) with no "
+                             f"units at all; use a width of at least {1 / smallest:.3g}")
 
 
 def _conv_length(length: int, kernel: int, stride: int, padding: int) -> int:

@@ -22,7 +22,7 @@ from ..errors import DataError, UsageError, WorkspaceError
 from .adapters import LateralAdapter, make_adapter
 from .architecture import ArchitectureRecord
 from .guard import guard, guard_state
-from .layers import Shape
+from .layers import Shape, check_width
 from .parts import AdapterInfo, Block, Closure, Column, ColumnInfo, TaskInfo
 from .schema import Dense, Spec
 
@@ -324,6 +324,7 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
         self._check_new_task(name, classes)
         if not (isinstance(width, (int, float)) and 0 < width <= 16):
             raise UsageError(f"width must be a number in (0, 16], got {width}")
+        check_width(self.spec, float(width))
         device = self.device
         with torch.random.fork_rng(devices=[]):
             torch.manual_seed(seed)

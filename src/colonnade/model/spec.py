@@ -8,15 +8,16 @@ fits the shape before it (through the layer factory's shape inference).
 
 from __future__ import annotations
 
+import difflib
 from pathlib import Path
 from typing import Any
 
-import yaml
 from pydantic import ValidationError
 
 from ..errors import SpecError
 from .layers import template_shapes
 from .schema import LAYER_KINDS, LateralSpec, LayerSpec, Spec, TrainSpec, show_value
+from .yamlfile import load_yaml
 
 __all__ = ["load_spec", "parse_spec"]
 
@@ -50,11 +51,22 @@ def _sentence(err: ValidationError, prefix: str, allowed: list[str] | None = Non
     return f"{path}: {first['msg']}"
 
 
+# Keys that qualify a layer rather than name its kind.
+_PARAMETER_KEYS = {"kernel", "stride", "padding", "size"}
+
+
 def _parse_layer(raw: Any, index: int) -> LayerSpec:
     where = f"column[{index}]"
     if not isinstance(raw, dict) or not raw:
         raise SpecError(f"{where}: expected a layer such as {{dense: 64}}, got {show_value(raw)}")
     kinds = [k for k in raw if k in LAYER_KINDS]
+    if not kinds:
+        unknown = [k for k in raw if isinstance(k, str) and k not in _PARAMETER_KEYS]
+        if unknown:
+            near = difflib.get_close_matches(unknown[0].lower(), list(LAYER_KINDS), n=1)
+            hint = (f"did you mean {near[0]!r}?" if near else
+                    f"the kinds are {', '.join(LAYER_KINDS)}")
+            raise SpecError(f"{where}: unknown layer kind {unknown[0]!r}; {hint}")
     if len(kinds) != 1:
         names = ", ".join(LAYER_KINDS)
         found = "none" if not kinds else " and ".join(kinds)
@@ -115,10 +127,4 @@ def load_spec(path: str | Path) -> Spec:
         raise SpecError(f"{path}: no such spec file") from None
     except (OSError, UnicodeDecodeError) as exc:
         raise SpecError(f"{path}: cannot read the spec file ({exc.__class__.__name__})") from None
-    try:
-        raw = yaml.safe_load(text)
-    except yaml.YAMLError as exc:
-        mark = getattr(exc, "problem_mark", None)
-        where = f" at line {mark.line + 1}" if mark is not None else ""
-        raise SpecError(f"{path}: not valid YAML{where}; check indentation and brackets") from None
-    return parse_spec(raw)
+    return parse_spec(load_yaml(text, str(path), SpecError))

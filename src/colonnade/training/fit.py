@@ -9,6 +9,7 @@ draw from seeded generators, so a seed fixes the result.
 from __future__ import annotations
 
 import math
+import sys
 import time
 import warnings
 from collections.abc import Callable
@@ -26,7 +27,7 @@ from .cache import FrozenActivations, FrozenCache, frozen_cache
 from .data import TaskData
 
 __all__ = ["TrainRecord", "fit_task", "evaluate", "task_logits", "make_optimizer",
-           "EVAL_BATCH", "Transform", "all_task_logits"]
+           "EVAL_BATCH", "Transform", "all_task_logits", "EpochProgress"]
 
 EVAL_BATCH = 256  # the batch size of every evaluation, so repeated runs batch alike
 
@@ -138,7 +139,8 @@ Transform = Callable[[torch.Tensor, int], torch.Tensor]
 def fit_task(net: ProgressiveNet, task: str, data: TaskData, train: TrainSpec,
              epochs: int | None = None, seed: int | None = None, progress: bool = True,
              transform: Transform | None = None, cache: bool | None = None,
-             cache_mb: float | None = None, ddp: Any = None) -> TrainRecord:
+             cache_mb: float | None = None, ddp: Any = None, label: str | None = None,
+             ) -> TrainRecord:
     """Train the net's trainable parts on ``task`` with early stopping on validation.
 
     Keeps the epoch with the best validation accuracy (ties: lower loss). ``transform``
@@ -147,7 +149,8 @@ def fit_task(net: ProgressiveNet, task: str, data: TaskData, train: TrainSpec,
     ``cache`` and ``cache_mb`` override ``train.cache`` and ``train.cache_mb``.
     ``ddp`` (distributed.DistributedHooks) trains data-parallel: ``data`` is then this
     rank's shard, the trainable parts run wrapped in DistributedDataParallel, and norm
-    statistics are synchronised before each validation.
+    statistics are synchronised before each validation. ``progress`` draws a bar on a
+    terminal and prints one line per epoch otherwise; ``label`` names the run in it.
     """
     params = net.trainable_parameters()
     if ddp is not None:
@@ -165,9 +168,7 @@ def fit_task(net: ProgressiveNet, task: str, data: TaskData, train: TrainSpec,
     start = time.perf_counter()
     frozen = _frozen_cache(net, task, data, train, transform, cache, cache_mb)
     model = ddp.wrap(net, task) if ddp is not None else None
-    bar = None
-    if progress:
-        bar = tqdm(total=epochs, desc=f"train {task}", unit="epoch", leave=False)
+    bar = EpochProgress(label or f"train {task}", epochs) if progress else None
     train_loss = float("nan")
     epoch = 0
     try:
@@ -203,8 +204,7 @@ def fit_task(net: ProgressiveNet, task: str, data: TaskData, train: TrainSpec,
                               "val_loss": vloss,
                               "seconds": time.perf_counter() - epoch_start})
                 if bar is not None:
-                    bar.set_postfix(loss=f"{train_loss:.4f}", val_acc=f"{acc:.3f}")
-                    bar.update(1)
+                    bar.epoch(epoch, train_loss, acc)
                 if acc > best[0] or (acc == best[0] and vloss < best[1]):
                     best, best_epoch, stale = (acc, vloss), epoch, 0
                     best_state = [p.detach().clone() for p in params] + [
@@ -225,6 +225,32 @@ def fit_task(net: ProgressiveNet, task: str, data: TaskData, train: TrainSpec,
     return TrainRecord(train.optimizer, train.lr, train.weight_decay, train.batch_size, seed,
                        epoch, best_epoch, best[0], best[1], train_loss,
                        epoch < epochs, time.perf_counter() - start, curve, frozen.note)
+
+
+class EpochProgress:
+    """A progress bar on a terminal; one plain line per epoch when stderr is redirected
+    (a log file gets no carriage-return frames)."""
+
+    def __init__(self, label: str, epochs: int, stream: Any = None) -> None:
+        self.label, self.epochs = label, epochs
+        self.stream = stream if stream is not None else sys.stderr
+        self.bar = None
+        isatty = getattr(self.stream, "isatty", None)
+        if callable(isatty) and isatty():
+            self.bar = tqdm(total=epochs, desc=label, unit="epoch", leave=False,
+                            file=self.stream)
+
+    def epoch(self, epoch: int, train_loss: float, val_accuracy: float) -> None:
+        if self.bar is not None:
+            self.bar.set_postfix(loss=f"{train_loss:.4f}", val_acc=f"{val_accuracy:.3f}")
+            self.bar.update(1)
+            return
+        print(f"{self.label}: epoch {epoch}/{self.epochs}, train loss {train_loss:.4f}, "
+              f"validation accuracy {val_accuracy:.4f}", file=self.stream, flush=True)
+
+    def close(self) -> None:
+        if self.bar is not None:
+            self.bar.close()
 
 
 def _frozen_cache(net: ProgressiveNet, task: str, data: TaskData, train: TrainSpec,

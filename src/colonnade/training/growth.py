@@ -15,6 +15,7 @@ from ..errors import UsageError
 from ..model.device import resolve_device
 from ..model.network import ProgressiveNet
 from . import validation as transfer
+from .checks import check_training_data
 from .data import TaskData
 from .fit import Transform, evaluate, fit_task
 
@@ -30,8 +31,13 @@ def grow(net: ProgressiveNet, task: str, data: TaskData, mode: str = "column",
          on: str | None = None, width: float = 1.0, epochs: int | None = None,
          device: str | None = None, progress: bool = True, transform: Transform | None = None,
          cache: bool | None = None, cache_mb: float | None = None,
-         target: float | None = None, ddp: Any = None) -> dict[str, Any]:
+         target: float | None = None, ddp: Any = None, classes_given: bool = False,
+         ) -> dict[str, Any]:
     """Grow ``task`` on ``net`` and train it on ``data``; returns the history entry.
+
+    The training data is checked first (checks.py): refused when a class has no
+    training rows (unless ``classes_given``: the class count was asked for), warned
+    about when a class is thin or missing from validation (``entry["data_warnings"]``).
 
     ``mode="auto"`` grows only a head when that reaches ``target`` validation accuracy,
     else a column (``_grow_auto``).
@@ -41,10 +47,26 @@ def grow(net: ProgressiveNet, task: str, data: TaskData, mode: str = "column",
     ``cache``, ``cache_mb`` and ``ddp`` (data-parallel training, distributed.py) go to
     ``fit_task``.
     """
+    # Data-parallel ranks see one shard each; distributed.run_rank checks the whole data.
+    found = check_training_data(data.y, data.y_val, data.classes, data.source,
+                                classes_given=classes_given) if ddp is None else None
     if mode == "auto":
-        return _grow_auto(net, task, data, target, on=on, width=width, epochs=epochs,
-                          device=device, progress=progress, transform=transform, cache=cache,
-                          cache_mb=cache_mb, ddp=ddp)
+        entry = _grow_auto(net, task, data, target, on=on, width=width, epochs=epochs,
+                           device=device, progress=progress, transform=transform, cache=cache,
+                           cache_mb=cache_mb, ddp=ddp)
+    else:
+        entry = _grow_one(net, task, data, mode, on, width, epochs, device, progress,
+                          transform, cache, cache_mb, target, ddp)
+    if found is not None and found.warnings:
+        entry["data_warnings"] = list(found.warnings)
+    return entry
+
+
+def _grow_one(net: ProgressiveNet, task: str, data: TaskData, mode: str, on: str | None,
+              width: float, epochs: int | None, device: str | None, progress: bool,
+              transform: Transform | None, cache: bool | None, cache_mb: float | None,
+              target: float | None, ddp: Any, label: str | None = None) -> dict[str, Any]:
+    """One growth step of a fixed mode (``grow`` without the checks and auto mode)."""
     if target is not None:
         raise UsageError("--target applies to --mode auto only")
     if mode not in ("column", "head"):
@@ -65,7 +87,7 @@ def grow(net: ProgressiveNet, task: str, data: TaskData, mode: str = "column",
         before = transfer.before_training(net, task, parts, data, seed)
         record = fit_task(net, task, data, net.spec.train, epochs=epochs, seed=seed,
                           progress=progress, transform=transform, cache=cache,
-                          cache_mb=cache_mb, ddp=ddp)
+                          cache_mb=cache_mb, ddp=ddp, label=label)
     except BaseException:
         net.remove_task(task)
         raise
@@ -111,14 +133,19 @@ def _grow_auto(net: ProgressiveNet, task: str, data: TaskData, target: float | N
     if data.n_val == 0:
         raise UsageError("--mode auto compares validation accuracy with --target, but the "
                          "data has no validation samples; pass --val FILE")
+    kw = dict(epochs=kw.get("epochs"), device=kw.get("device"), progress=kw.get("progress", True),
+              transform=kw.get("transform"), cache=kw.get("cache"), cache_mb=kw.get("cache_mb"),
+              target=None, ddp=kw.get("ddp"))
     if not net.columns:
-        entry = grow(net, task, data, mode="column", width=width, **kw)
+        entry = _grow_one(net, task, data, "column", None, width, label="growing a column",
+                          **kw)
         entry["auto"] = {"chose": "column", "target": float(target), "head_val_accuracy": None,
                          "reason": "the network has no frozen column to carry a head yet"}
+        _column_vs_target(entry, float(target))
         return entry
     meta = copy.deepcopy(net.meta)
     attachments = {name: dict(tensors) for name, tensors in net.attachments.items()}
-    head = grow(net, task, data, mode="head", on=on, **kw)
+    head = _grow_one(net, task, data, "head", on, 1.0, label="auto: trying a head", **kw)
     acc, column = head["val_accuracy"], head["column"]
     if acc >= target:
         head["auto"] = {"chose": "head", "target": float(target), "head_val_accuracy": acc,
@@ -130,10 +157,24 @@ def _grow_auto(net: ProgressiveNet, task: str, data: TaskData, target: float | N
     net.meta.update(meta)
     net.attachments.clear()
     net.attachments.update(attachments)
-    entry = grow(net, task, data, mode="column", width=width, **kw)
+    entry = _grow_one(net, task, data, "column", None, width,
+                      label="auto: growing a column", **kw)
     entry["auto"] = {"chose": "column", "target": float(target), "head_val_accuracy": acc,
                      "head_column": column,
                      "reason": f"a head on frozen column {column} reached only validation "
                                f"accuracy {acc:.4f}, below the target {target:g}, so it was "
                                f"rolled back and a column grown"}
+    _column_vs_target(entry, float(target))
     return entry
+
+
+def _column_vs_target(entry: dict[str, Any], target: float) -> None:
+    """Say whether the grown column met ``--target`` too, and if not by how much."""
+    acc = entry["val_accuracy"]
+    entry["auto"]["column_val_accuracy"] = acc
+    entry["auto"]["column_met_target"] = bool(acc >= target)
+    if acc < target:
+        entry["auto"]["column_short_by"] = target - acc
+        entry["auto"]["reason"] += (f"; the column also missed the target: validation "
+                                    f"accuracy {acc:.4f}, {target - acc:.4f} short of "
+                                    f"{target:g}")

@@ -19,10 +19,14 @@ from ..model.network import ProgressiveNet
 from .data import TaskData
 from .fit import evaluate
 
-__all__ = ["VAL_FILE", "store_validation", "validation", "accuracies", "random_init_copy",
-           "before_training", "after_training"]
+__all__ = ["VAL_FILE", "REMEASURED", "store_validation", "validation", "accuracies",
+           "random_init_copy", "before_training", "after_training", "remeasure"]
 
 VAL_FILE = "validation.safetensors"
+# A history step after a change to a task's own parts (trim, merge, fine-tune, retrain):
+# the task's accuracy on its stored validation data before and after the change. The
+# record (evidence.transfer) reads it back.
+REMEASURED = "task_remeasured"
 
 
 def store_validation(net: ProgressiveNet, task: str, x: torch.Tensor, y: torch.Tensor) -> None:
@@ -38,10 +42,12 @@ def validation(net: ProgressiveNet, task: str) -> tuple[torch.Tensor, torch.Tens
     return files[f"{task}/x"], files[f"{task}/y"]
 
 
-def accuracies(net: ProgressiveNet) -> dict[str, float | None]:
-    """Every task's accuracy on its stored validation data (None where none is stored)."""
+def accuracies(net: ProgressiveNet, tasks: Iterable[str] | None = None,
+               ) -> dict[str, float | None]:
+    """Every task's (or the named tasks') accuracy on its stored validation data (None
+    where none is stored)."""
     out: dict[str, float | None] = {}
-    for task in net.tasks:
+    for task in net.tasks if tasks is None else tasks:
         val = validation(net, task)
         out[task] = None if val is None or val[1].numel() == 0 else evaluate(net, task, *val)[0]
     return out
@@ -87,3 +93,26 @@ def after_training(net: ProgressiveNet, task: str, data: TaskData, entry: dict[s
     store_validation(net, task, data.x_val, data.y_val)
     entry["val_accuracies"] = accuracies(net)
     entry.update(before)
+
+
+def remeasure(net: ProgressiveNet, task: str, cause: str, before: float | None,
+              when: str) -> dict[str, Any] | None:
+    """Record a task's accuracy after a change to its parts, keeping the figure before.
+
+    ``before`` is the accuracy on the stored validation data before the change (measure
+    it with ``accuracies`` first). Appends a ``task_remeasured`` history step holding
+    both figures, and sets the task's record to the new one (the growth-time figure stays
+    under ``val_accuracy_at_growth``). Returns the step, or None without stored data.
+    """
+    val = validation(net, task)
+    if val is None or val[1].numel() == 0:
+        return None
+    after, loss = evaluate(net, task, *val)
+    step = {"step": REMEASURED, "task": task, "time": when, "cause": cause,
+            "val_accuracy_before": before, "val_accuracy": after,
+            "measured_on": "the task's stored validation data"}
+    net.meta["history"].append(step)
+    rec = net.meta["records"].setdefault(task, {})
+    rec.setdefault("val_accuracy_at_growth", rec.get("val_accuracy"))
+    rec["val_accuracy"], rec["val_loss"] = after, loss
+    return step

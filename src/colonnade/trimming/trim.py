@@ -30,6 +30,7 @@ from ..model.guard import guard
 from ..model.network import ProgressiveNet
 from ..training.data import TaskData
 from ..training.fit import evaluate, fit_task
+from ..training.validation import accuracies, remeasure
 from .editor import AdapterEditor
 from .merge import fit_joint, install_joint, uninstall_joint
 from .ownership import fold_targets, own_parts, owned_adapters, param_count, refuse_sealed
@@ -322,6 +323,7 @@ def trim(net: ProgressiveNet, task: str, data: TaskData, max_drop: float = 0.5,
     folds = fold_targets(net, task)
     guard(net, [part for part, _ in folds.values()], "trim")
     acc0, loss0 = evaluate(net, task, x, y)
+    val_before = accuracies(net, [task])[task]
     params0, macs0 = _path_cost(net, task)
     target = ({"params": target_params} if target_params is not None else
               {"macs": target_macs} if target_macs is not None else None)
@@ -342,7 +344,7 @@ def trim(net: ProgressiveNet, task: str, data: TaskData, max_drop: float = 0.5,
         report.columns_after = list(net.closure(task).columns)
         report.target_met = _target_met(report, net) if target else None
         report.stopped = _why_stopped(report, owned, net)
-        _record(net, report, data)
+        _record(net, report, data, val_before)
     except BaseException:
         editor.restore()
         raise
@@ -361,8 +363,10 @@ def _why_stopped(report: TrimReport, owned: list[str], net: ProgressiveNet) -> s
             f"accuracy points")
 
 
-def _record(net: ProgressiveNet, report: TrimReport, data: TaskData) -> None:
-    """Every change is a growth step; the usage scores are measured again afterwards."""
+def _record(net: ProgressiveNet, report: TrimReport, data: TaskData,
+            val_before: float | None) -> None:
+    """Every change is a growth step; the task's accuracy on its stored validation data
+    (the continual-learning record) and its usage scores are measured again afterwards."""
     when = now()
     for step in report.steps:
         entry = {"step": step.step, "task": report.task, "time": when,
@@ -378,6 +382,8 @@ def _record(net: ProgressiveNet, report: TrimReport, data: TaskData) -> None:
         "max_drop": report.max_drop, "accuracy_before": report.accuracy_before,
         "accuracy_after": report.accuracy_after, "params_saved": report.params_saved,
         "macs_saved": report.macs_saved, "columns_dropped": report.columns_dropped})
+    remeasure(net, report.task, ", ".join(dict.fromkeys(s.step for s in report.steps)),
+              val_before, when)
     net.meta.get("usage", {}).pop(report.task, None)
     if task_adapters(net, report.task):
         usage = measure(net, report.task, data.x, data.y, seed=net.spec.train.seed)
