@@ -345,7 +345,9 @@ def test_focus_highlights_exactly_the_closure(compact):
                 n for n, d in G.nodes(data=True) if d["kind"] == "layer"} - want
         else:
             assert {i for i in focus if "column" in groups[i]} == {f"c{k}" for k in c.columns}
-            assert {i for i in focus if "input" in groups[i]} == {f"input_c{k}" for k in c.columns}
+            assert {i for i in focus if "input" in groups[i]} == {"input"}  # drawn once
+            assert {i for i in focus if "input-bus" in groups[i] and i.startswith("bus_c")} == {
+                f"bus_c{k}" for k in c.columns}
             assert {i for i in focus if "forward" in groups[i]} == {f"forward:input:c{k}"
                                                                    for k in c.columns}
             pairs = set()
@@ -375,6 +377,77 @@ def test_compact_bundles_are_labelled_per_pair():
         params = sum(p.numel() for k in keys for p in net.adapters[k].parameters())
         assert cells[cell].startswith(f"{len(keys)} nonlinear"), cells[cell]
         assert f"{params} params" in cells[cell] or f"{params / 1000:.3g}k params" in cells[cell]
+
+
+def legend_text(root: ET.Element) -> str:
+    """Every text of the legend node in an SVG, joined."""
+    for g in root.iter(SVG + "g"):
+        if g.get("id") == "legend":
+            return " ".join(t.text or "" for t in g.iter(SVG + "text"))
+    raise AssertionError("no legend in the drawing")
+
+
+@needs_dot
+@pytest.mark.parametrize("compact", [False, True], ids=["full", "compact"])
+def test_legend_lists_only_what_is_drawn(compact):
+    # Everything frozen and sealed: no TRAINABLE, no dashed trainable adapter, no usage.
+    net = grown(DENSE, 3)
+    for t in net.tasks:
+        seal_task(net, t)
+    text = legend_text(svg_of(net, compact=compact))
+    assert "SEALED" in text and "sealed adapter" in text and "nonlinear adapter" in text
+    for absent in ("TRAINABLE", "FROZEN", "trainable adapter", "usage", "pruned"):
+        assert absent not in text, (absent, text)
+    assert not re.search(r"(?<!non)linear adapter", text)  # only the kind that is drawn
+    # A task being trained, one frozen: both appear, and a pruned adapter when drawn.
+    net = grown(DENSE, 2, train_last=True)
+    prune(net, "c2_b1_from_c0")
+    text = legend_text(svg_of(net, compact=compact, show_removed=True))
+    for present in ("TRAINABLE", "FROZEN", "trainable adapter", "pruned or merged"):
+        assert present in text, (present, text)
+    assert "SEALED" not in text and "sealed adapter" not in text
+
+
+def dot_positions(source: str) -> dict[str, tuple[float, float]]:
+    """Node centres as laid out by graphviz's own dot (its JSON output), in points."""
+    import json
+
+    done = run_dot(source, "json")
+    assert done.returncode == 0, done.stderr.decode()
+    layout = json.loads(done.stdout)
+    out = {}
+    for obj in layout.get("objects", []):
+        if "pos" in obj:
+            x, y = (float(v) for v in obj["pos"].split(","))
+            out[obj["name"]] = (x, y)
+    return out
+
+
+@needs_dot
+@pytest.mark.parametrize("n", [4, 12])
+def test_compact_draws_the_input_once_and_the_legend_in_a_corner(n):
+    net = grown(DENSE, n)
+    seal_task(net, "t0")
+    root = svg_of(net, compact=True)
+    groups = svg_groups(root)
+    assert [i for i, c in groups.items() if "input" in c and "input-bus" not in c] == ["input"]
+    assert {i for i, c in groups.items() if "forward" in c} == {
+        f"forward:input:c{k}" for k in range(n)}  # every column still reads the input
+    pos = dot_positions(to_dot(net, compact=True).source)
+    columns = [pos[f"c{k}"] for k in range(n)]
+    legend = pos["legend"]
+    # Corner: right of every column, on the last column's row (the top for BT).
+    assert legend[0] > max(x for x, _y in columns)
+    assert legend[1] == pytest.approx(columns[-1][1])
+    assert legend[1] >= max(y for _x, y in columns)
+
+
+@needs_dot
+def test_compact_is_chosen_from_eight_tasks_on():
+    for n, compact in ((7, False), (8, True)):
+        groups = svg_groups(svg_of(grown(DENSE, n)))
+        assert any("bundle" in c for c in groups.values()) == compact, n
+        assert any("layer" in c for c in groups.values()) == (not compact), n
 
 
 @needs_dot

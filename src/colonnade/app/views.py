@@ -10,7 +10,7 @@ from ..costing.ledger import cost_network
 from ..errors import ColonnadeError, UsageError
 from ..files.store import atomic_write
 from ..model.network import ProgressiveNet
-from ..views.draw import INSTALL_HINT, GraphvizMissingError, format_of, to_dot
+from ..views.draw import INSTALL_HINT, GraphvizMissingError, auto_compact, format_of, to_dot
 from ..views.report import DEFAULT_PROJECT, build_report
 from .transaction import read_workspace
 
@@ -35,7 +35,7 @@ def write_report(folder: str | Path, out: str | Path, hardware: str | Path | Non
 
 
 def draw_workspace(folder: str | Path, output: str | Path, task: str | None = None,
-                   compact: bool = False, direction: str = "BT", show_removed: bool = False,
+                   compact: bool | None = None, direction: str = "BT", show_removed: bool = False,
                    ) -> dict[str, Any]:
     """``colonnade draw``: load a workspace and render its diagram."""
     net = read_workspace(folder)
@@ -59,12 +59,13 @@ def cost_workspace(folder: str | Path, project_n: int = 0, width: float | None =
 
 
 def render(net: ProgressiveNet, output: str | Path, task: str | None = None,
-           compact: bool = False, direction: str = "BT", show_removed: bool = False,
+           compact: bool | None = None, direction: str = "BT", show_removed: bool = False,
            ) -> dict[str, Any]:
     """Write the diagram to ``output`` (format from its suffix), atomically.
 
     Without graphviz's ``dot`` program, the DOT source is written beside ``output`` (same
-    name, ``.dot``) and GraphvizMissingError says how to install graphviz.
+    name, ``.dot``) and GraphvizMissingError says how to install graphviz. ``compact=None``
+    chooses the compact view from ``AUTO_COMPACT_TASKS`` tasks on.
     """
     import graphviz
 
@@ -77,6 +78,7 @@ def render(net: ProgressiveNet, output: str | Path, task: str | None = None,
         raise UsageError(f"{output.parent}: no such folder for the diagram; create it first")
     if task is not None:
         net.task(task)
+    compact = auto_compact(net, compact)
     dot = to_dot(net, task=task, compact=compact, direction=direction,
                  show_removed=show_removed, dpi=144 if fmt == "png" else None)
     result = {"output": str(output), "format": fmt, "compact": compact, "task": task}

@@ -183,9 +183,12 @@ def add_parsers(verb: Any) -> None:
                    help="FILE.svg, FILE.png or FILE.pdf (rendered by graphviz's dot), or "
                         "FILE.dot (the source)")
     p.add_argument("--task", help="highlight this task's closure and fade the rest")
-    p.add_argument("--compact", action="store_true",
-                   help="one box per column, the adapters between each pair of columns "
-                        "bundled into one labelled box (for many tasks)")
+    view = p.add_mutually_exclusive_group()
+    view.add_argument("--compact", action="store_true", default=None,
+                      help="one box per column, the adapters between each pair of columns "
+                           "bundled into one labelled box (default from 8 tasks on)")
+    view.add_argument("--full", dest="compact", action="store_false",
+                      help="every layer of every column, however many tasks")
     p.add_argument("--direction", choices=["BT", "TB", "LR", "RL"], default="BT",
                    type=str.upper, help="where data flows: BT bottom to top (default), TB "
                                         "top to bottom, LR left to right, RL right to left")

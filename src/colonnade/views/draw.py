@@ -41,7 +41,6 @@ from .draw_style import (
     esc,
     input_node,
     lateral_style,
-    legend,
     node_style,
     si,
     small,
@@ -51,13 +50,15 @@ from .draw_style import (
     usage_width,
 )
 from .graph import INPUT, build_graph, closure_parts, column_graph
+from .legend import Shown, legend_node
 
-__all__ = ["to_dot", "format_of", "GraphvizMissingError", "FORMATS",
-           "DIRECTIONS"]
+__all__ = ["to_dot", "format_of", "auto_compact", "GraphvizMissingError", "FORMATS",
+           "DIRECTIONS", "AUTO_COMPACT_TASKS"]
 
 FORMATS = ("svg", "png", "pdf", "dot")
 DIRECTIONS = ("BT", "TB", "LR", "RL")  # graphviz rankdir: where data flows
 INSTALL_HINT = "install graphviz (Debian: apt-get install graphviz)"
+AUTO_COMPACT_TASKS = 8  # from this many tasks on, the full view is too wide to read
 
 
 class GraphvizMissingError(ColonnadeError):
@@ -75,6 +76,7 @@ def _full(dot: Any, G: nx.DiGraph, focus: set[str] | None, show_removed: bool,
     def mark(fade: bool) -> str:
         return "faded" if fade else "focus"
 
+    shown = Shown()
     heads_on: dict[int, list[str]] = {}
     columns: dict[int, list[str]] = {}
     for n, d in G.nodes(data=True):
@@ -89,6 +91,7 @@ def _full(dot: Any, G: nx.DiGraph, focus: set[str] | None, show_removed: bool,
         params = sum(G.nodes[n]["params"] for n in nodes)
         macs = sum(G.nodes[n]["macs"] for n in nodes)
         s = STATE_STYLE[state]
+        shown.states.add(state)
         label = (f"<<B>column {k}: {esc(first['task'])}</B><BR/><B>{badge_text(first)}</B><BR/>"
                  f"{small(f'{params:,} params, {si(macs)} MACs', fade)}>")
         with dot.subgraph(name=f"cluster_c{k}") as c:
@@ -114,20 +117,20 @@ def _full(dot: Any, G: nx.DiGraph, focus: set[str] | None, show_removed: bool,
             for n in heads_on.get(k, []):
                 d = G.nodes[n]
                 hs, hf = state_of(d), faded(d["part"])
+                shown.states.add(hs)
                 text = f"{d['classes']} classes, {si(d['params'])} params"
                 c.node(n, id=n, fontname=FONT, fontsize="11", width="1.7",
                        label=(f"<<B>head {esc(d['task'])}</B><BR/>{small(text, hf)}<BR/>"
                               f"{small('<B>' + STATE_STYLE[hs]['badge'] + '</B>', hf)}>"),
                        tooltip=f"{d['module']}: {d['in_shape']} -> {d['out_shape']}",
                        **css_class(f"head {mark(hf)}"), **node_style(hs, hf))
-    kinds: list[str] = []
-    removed = False
     top = max([d["usage"] for _u, _v, d in G.edges(data=True)
                if d.get("role") == "lateral" and d.get("usage") is not None] or [0.0])
     for u, v, d in G.edges(data=True):
         eid = edge_id(u, v, d)
         if d["role"] == "forward":
             fade = faded(G.nodes[u].get("part")) or faded(G.nodes[v].get("part"))
+            shown.forward = True
             dot.edge(u, v, id=eid, **css_class(f"forward {mark(fade)}"),
                      color=FADED["edge"] if fade else FORWARD_COLOUR, penwidth="1.2",
                      arrowsize="0.7", weight="8")
@@ -135,9 +138,10 @@ def _full(dot: Any, G: nx.DiGraph, focus: set[str] | None, show_removed: bool,
         live = d["state"] == "live"
         if not live and not show_removed:
             continue
-        removed |= not live
-        if live and d["kind"] not in kinds:
-            kinds.append(d["kind"])
+        shown.removed |= not live
+        if live:
+            shown.lateral(d["kind"], state_of(d))
+            shown.usage |= d["usage"] is not None and top > 0
         fade = faded(d["part"])
         attrs = lateral_style(d["kind"], state_of(d), live, fade, usage_width(d["usage"], top))
         tip = f"{d['key']} ({d['kind']}, {d['state']}): {d['params']:,} params, {d['macs']:,} MACs"
@@ -147,7 +151,7 @@ def _full(dot: Any, G: nx.DiGraph, focus: set[str] | None, show_removed: bool,
             attrs.update(xlabel=d["state"], fontsize="8", fontname=FONT)
         dot.edge(u, v, id=eid, tooltip=tip, arrowsize="0.8",
                  **css_class(f"lateral {d['state']} {mark(fade)}"), **attrs)
-    legend(dot, kinds, removed, top > 0, flow, stacked=True)
+    legend_node(dot, shown)
 
 
 # ----------------------------------------------------------------------------- compact view
@@ -160,10 +164,13 @@ def _compact(dot: Any, G: nx.DiGraph, focus: set[str] | None, show_removed: bool
 
     Column j's output runs along its line past one box per later column k; each box
     bundles the adapters from j into k (blocks and heads) and feeds k along k's row.
-    Edges of the crossbar are plain graphviz edges, so dot lays it out as a grid.
+    The input is drawn once: a bus beside the columns taps into each of them. The legend
+    sits beside the last column's tap, in the corner the diagonal leaves empty. Edges of
+    the crossbar are plain graphviz edges, so dot lays it out as a grid.
     """
     C = column_graph(G)
     out_port, in_port = _PORTS[flow]
+    shown = Shown(forward=True, bundles=True)
 
     def faded(part: str | None) -> bool:
         return focus is not None and part is not None and part not in focus
@@ -175,10 +182,12 @@ def _compact(dot: Any, G: nx.DiGraph, focus: set[str] | None, show_removed: bool
     for _k, n in cols:
         d = C.nodes[n]
         state, fade = state_of(d), faded(d["part"])
+        shown.states.add(state)
         lines = [f"<B>column {d['column']}: {esc(d['task'])}</B>", f"<B>{badge_text(d)}</B>",
                  small(f"{d['params']:,} params, {si(d['macs'])} MACs", fade)]
         for h in d["heads"]:
             hf = fade or faded(h["part"])
+            shown.states.add(state_of(h))
             lines.append(small(f"head {esc(h['task'])}: {h['classes']} classes, "
                                 f"{STATE_STYLE[state_of(h)]['badge'].lower()}", hf))
         dot.node(n, id=n, label="<" + "<BR/>".join(lines) + ">", fontname=FONT,
@@ -193,14 +202,15 @@ def _compact(dot: Any, G: nx.DiGraph, focus: set[str] | None, show_removed: bool
             cells[C.nodes[u]["column"], C.nodes[v]["column"]] = d
     focused = {pair for pair, d in cells.items()
                if focus is None or set(d["parts"]) & focus}
-    kinds: list[str] = []
     for (j, k), d in sorted(cells.items()):
         live = d["count"] > 0
         fade = (j, k) not in focused
-        for kind in d["kinds"]:
-            if kind not in kinds:
-                kinds.append(kind)
         state = "sealed" if d["sealed"] else ("frozen" if d["frozen"] else "trainable")
+        if live:
+            for kind in d["kinds"]:
+                shown.lateral(kind, state)
+            shown.usage |= d["usage"] is not None and top > 0
+        shown.removed |= bool(show_removed and d["removed"])
         color = (KIND_STYLE.get(d["kinds"][0], OTHER_KIND_STYLE)[0] if len(d["kinds"]) == 1
                  else OTHER_KIND_STYLE[0])
         what = d["kinds"][0] if len(d["kinds"]) == 1 else "adapters"
@@ -219,30 +229,29 @@ def _compact(dot: Any, G: nx.DiGraph, focus: set[str] | None, show_removed: bool
                  fontsize="7", height="0.3", width="0.8", margin="0.04,0.02",
                  tooltip=f"from column {j} into column {k}: {', '.join(d['keys']) or 'none live'}",
                  **css_class(f"bundle {mark(fade)}"), **style)
-    # Rows: the bundles into column k, left to right by source, then column k itself.
+    # Rows: the bundles into column k, left to right by source, then column k, then the
+    # point where the input bus taps into it.
     by_row: dict[int, list[int]] = {}
     for j, k in cells:
         by_row.setdefault(k, []).append(j)
+    col_fade = {k: faded(C.nodes[n]["part"]) for k, n in cols}
     for k, n in cols:
         sources = sorted(by_row.get(k, []))
-        # Each column reads the input: a small input stub closes its row.
-        stub = f"input_c{k}"
-        col_fade = faded(C.nodes[n]["part"])
-        dot.node(stub, id=stub, label="input", shape="oval", fontname=FONT, fontsize="8",
-                 height="0.25", width="0.5", margin="0.02,0.01", style="filled",
-                 fillcolor="#FFFFFF", color=FADED["line"] if col_fade else "#404040",
-                 fontcolor=FADED["font"] if col_fade else "black",
-                 **css_class(f"input {mark(col_fade)}"))
-        row = [f"b{j}_{k}" for j in sources] + [n, stub]
+        tap = f"bus_c{k}"
+        dot.node(tap, id=tap, label="", shape="point", width="0.05",
+                 color=FADED["edge"] if col_fade[k] else FORWARD_COLOUR,
+                 **css_class(f"input-bus {mark(col_fade[k])}"))
+        row = [f"b{j}_{k}" for j in sources] + [n, tap]
         with dot.subgraph() as r:
             r.attr(rank="same")
             for name in row:
                 r.node(name)
         for i, (a, b) in enumerate(zip(row, row[1:], strict=False)):
-            if b == stub:  # drawn from the column to the stub, with the arrow at the column
+            if b == tap:  # drawn from the column to the tap, with the arrow at the column
                 dot.edge(a, b, dir="back", id=f"forward:{INPUT}:{n}", penwidth="1.0",
-                         color=FADED["edge"] if col_fade else FORWARD_COLOUR, arrowsize="0.6",
-                         **css_class(f"forward {mark(col_fade)}"))
+                         color=FADED["edge"] if col_fade[k] else FORWARD_COLOUR,
+                         arrowsize="0.6", minlen="2",
+                         **css_class(f"forward {mark(col_fade[k])}"))
                 continue
             d = cells[sources[i], k]
             live = d["count"] > 0
@@ -255,6 +264,15 @@ def _compact(dot: Any, G: nx.DiGraph, focus: set[str] | None, show_removed: bool
                 attrs["arrowhead"] = "none"
             dot.edge(a, b, id=f"row:{a}:{b}", **css_class(f"bundle-row {mark(fade)}"),
                      arrowsize="0.7", **attrs)
+    # The input, once, and its bus up past every column's tap.
+    input_node(dot, G.nodes[INPUT]["out_shape"], faded=all(col_fade.values()))
+    bus = [INPUT] + [f"bus_c{k}" for k, _n in cols]
+    for i, (a, b) in enumerate(zip(bus, bus[1:], strict=False)):
+        fade = all(col_fade[k] for k, _n in cols[i:])
+        ports = {"tailport": out_port} if a != INPUT else {}
+        dot.edge(a, b, id=f"bus:{a}:{b}", arrowhead="none", weight="50", penwidth="1.2",
+                 headport=in_port, color=FADED["edge"] if fade else FORWARD_COLOUR,
+                 **ports, **css_class(f"input-bus {mark(fade)}"))
     # Lines: column j's output up past its bundles, one box per later column.
     by_line: dict[int, list[int]] = {}
     for j, k in cells:
@@ -268,20 +286,28 @@ def _compact(dot: Any, G: nx.DiGraph, focus: set[str] | None, show_removed: bool
                      arrowhead="none", weight="50", penwidth="1.1",
                      color=FADED["edge"] if fade else "#606060",
                      **css_class(f"bundle-line {mark(fade)}"))
-    legend(dot, kinds, show_removed and any(d["removed"] for d in cells.values()), top > 0,
-            flow, stacked=False)
+    legend_node(dot, shown, beside=f"bus_c{cols[-1][0]}" if cols else None)
 
 
 # ----------------------------------------------------------------------------- public
-def to_dot(net: ProgressiveNet, task: str | None = None, compact: bool = False,
+def auto_compact(net: ProgressiveNet, compact: bool | None) -> bool:
+    """``compact`` as asked, or (None) compact from AUTO_COMPACT_TASKS tasks on."""
+    return len(net.tasks) >= AUTO_COMPACT_TASKS if compact is None else bool(compact)
+
+
+def to_dot(net: ProgressiveNet, task: str | None = None, compact: bool | None = None,
            direction: str = "BT", show_removed: bool = False, dpi: int | None = None,
            G: nx.DiGraph | None = None) -> Any:
-    """A ``graphviz.Digraph`` of the network; ``task`` highlights its closure."""
+    """A ``graphviz.Digraph`` of the network; ``task`` highlights its closure.
+
+    ``compact=None`` chooses: the compact view from AUTO_COMPACT_TASKS tasks on.
+    """
     import graphviz
 
     if direction not in DIRECTIONS:
         raise UsageError(f"unknown direction {direction!r}; use one of "
                          f"{', '.join(DIRECTIONS)}")
+    compact = auto_compact(net, compact)
     focus = closure_parts(net, task) if task is not None else None
     G = build_graph(net) if G is None else G
     dot = graphviz.Digraph(name="colonnade")

@@ -15,10 +15,10 @@ import networkx as nx
 from ..model.network import ProgressiveNet
 from .graph import INPUT
 
-__all__ = ["STATE_STYLE", "KIND_STYLE", "OTHER_KIND_STYLE", "FORWARD_COLOUR", "FADED",
-           "REMOVED_COLOUR", "FONT", "top_of", "css_class", "state_of", "si", "esc",
-           "small", "node_style", "usage_width", "lateral_style", "title_of",
-           "name_list", "legend", "edge_id", "input_node", "badge_text"]
+__all__ = ["STATE_STYLE", "KIND_STYLE", "OTHER_KIND_STYLE", "ARROW_GLYPH", "FORWARD_COLOUR",
+           "FADED", "REMOVED_COLOUR", "FONT", "top_of", "css_class", "state_of", "si", "esc",
+           "small", "node_style", "usage_width", "lateral_style", "title_of", "name_list",
+           "edge_id", "input_node", "badge_text"]
 
 STATE_STYLE = {
     "trainable": {"fill": "#FCE3C2", "line": "#A35200", "shape": "box",
@@ -31,6 +31,7 @@ STATE_STYLE = {
 }
 KIND_STYLE = {"linear": ("#0072B2", "onormal"), "nonlinear": ("#D55E00", "diamond")}
 OTHER_KIND_STYLE = ("#CC79A7", "dot")
+ARROW_GLYPH = {"onormal": "\u25b7", "diamond": "\u25c6", "dot": "\u25cf", "normal": "\u25b6"}
 FORWARD_COLOUR = "#404040"
 FADED = {"fill": "#F7F7F7", "line": "#C4C4C4", "font": "#A6A6A6", "edge": "#D4D4D4"}
 REMOVED_COLOUR = "#B8B8B8"
@@ -138,98 +139,15 @@ def name_list(names: list[str], most: int) -> str:
     return shown + (f" and {len(names) - most} more" if len(names) > most else "")
 
 
-def legend(dot: Any, kinds: list[str], show_removed: bool, usage: bool, flow: str,
-            stacked: bool) -> None:
-    """Samples of every state and line in use, in a cluster of their own.
-
-    ``stacked``: one sample per rank, chained so that they read from the top (or left)
-    whatever the flow; beside a tall drawing. Otherwise two ranks: node states in one,
-    lines in the other; under a wide, flat drawing.
-    """
-    states = [("trainable", "TRAINABLE: being trained"),
-              ("frozen", "FROZEN: never trained again"),
-              ("sealed", "SEALED: in a sealed closure")]
-    lines: list[tuple[str, str, dict[str, str]]] = [
-        ("forward", "forward (input to head)",
-         {"color": FORWARD_COLOUR, "penwidth": "1.2", "arrowhead": "normal"})]
-    for kind in kinds:
-        color, arrow = KIND_STYLE.get(kind, OTHER_KIND_STYLE)
-        lines.append((f"kind_{kind}", f"{kind} adapter",
-                      {"color": color, "arrowhead": arrow, "penwidth": "1.4"}))
-    lines.append(("trainable_adapter", "trainable adapter (dashed)",
-                  {"color": "#000000", "style": "dashed", "penwidth": "1.4"}))
-    lines.append(("sealed_adapter", "sealed adapter (double line)",
-                  {"color": "#000000:invis:#000000", "penwidth": "1.0"}))
-    if show_removed:
-        lines.append(("removed", "pruned or merged (dotted)",
-                      {"color": REMOVED_COLOUR, "style": "dotted", "penwidth": "1.0"}))
-    if usage:
-        lines.append(("usage", "wider: higher measured usage",
-                      {"color": "#000000", "penwidth": "4.0"}))
-
-    def state_node(g: Any, state: str, text: str) -> str:
-        name = f"legend_{state}"
-        g.node(name, label=text, id=name, fontname=FONT, fontsize="9", height="0.3",
-               **node_style(state, False))
-        return name
-
-    def line_sample(g: Any, name: str, text: str, edge: dict[str, str]) -> tuple[str, str]:
-        tail, head = f"legend_{name}", f"legend_{name}_text"
-        # Equal-width, left-aligned text so that stacked samples line up.
-        cell = (f'<<TABLE BORDER="0" CELLPADDING="0"><TR><TD WIDTH="150" ALIGN="LEFT">'
-                f'{esc(text)}</TD></TR></TABLE>>')
-        g.node(tail, label="", shape="point", width="0.04", color="#808080", id=tail)
-        g.node(head, label=cell, shape="plaintext", fontname=FONT, fontsize="9",
-               height="0.2", id=head)
-        g.edge(tail, head, id=f"legend_edge_{name}", minlen="2", **edge)
-        return tail, head
-
-    with dot.subgraph(name="cluster_legend") as lg:
-        lg.attr(label="<<B>legend</B>>", style="rounded", color="#808080", fontname=FONT,
-                fontsize="11", labeljust="l", labelloc=top_of(flow), penwidth="1.0",
-                fillcolor="white", id="cluster_legend")
-        if stacked:
-            rows: list[tuple[str, ...]] = [(s, t) for s, t in states]
-            rows += [(n, t, e) for n, t, e in lines]  # type: ignore[misc]
-            if flow in ("BT", "RL"):  # the chain grows against the reading order
-                rows.reverse()
-            previous = None
-            for item in rows:
-                with lg.subgraph() as row:
-                    row.attr(rank="same")
-                    anchor = (state_node(row, item[0], item[1]) if len(item) == 2
-                              else line_sample(row, *item)[0])  # type: ignore[arg-type]
-                if previous is not None:
-                    lg.edge(previous, anchor, style="invis", id=f"legend_order_{item[0]}")
-                previous = anchor
-            return
-        with lg.subgraph() as row:
-            row.attr(rank="same")
-            previous = None
-            for state, text in states:
-                name = state_node(row, state, text)
-                if previous is not None:
-                    row.edge(previous, name, style="invis", id=f"legend_order_{state}")
-                previous = name
-        with lg.subgraph() as row:
-            row.attr(rank="same")
-            previous = None
-            for name, text, edge in lines:
-                tail, head = line_sample(row, name, text, edge)
-                if previous is not None:
-                    row.edge(previous, tail, style="invis", id=f"legend_order_{name}")
-                previous = head
-        lg.edge("legend_trainable", "legend_forward", style="invis", id="legend_rows")
-
-
 def edge_id(u: str, v: str, d: dict[str, Any]) -> str:
     return f"lateral:{d['key']}" if d.get("role") == "lateral" else f"forward:{u}:{v}"
 
 
-def input_node(dot: Any, shape: list[int]) -> None:
-    dot.node(INPUT, id=INPUT, **css_class("input focus"),
+def input_node(dot: Any, shape: list[int], faded: bool = False) -> None:
+    dot.node(INPUT, id=INPUT, **css_class("input " + ("faded" if faded else "focus")),
              label=f"<<B>input</B><BR/>{small(esc(shape))}>", shape="oval", style="filled",
-             fillcolor="#FFFFFF", color="#404040", fontname=FONT, fontsize="11")
+             fillcolor="#FFFFFF", color=FADED["line"] if faded else "#404040",
+             fontcolor=FADED["font"] if faded else "black", fontname=FONT, fontsize="11")
 
 
 def badge_text(d: dict[str, Any]) -> str:

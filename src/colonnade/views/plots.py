@@ -17,6 +17,7 @@ import matplotlib
 
 matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
+from matplotlib.patches import Patch, Rectangle  # noqa: E402
 from matplotlib.ticker import (  # noqa: E402
     EngFormatter,
     FuncFormatter,
@@ -25,10 +26,12 @@ from matplotlib.ticker import (  # noqa: E402
 )
 
 __all__ = ["params_per_task", "macs_per_task", "projected_growth", "accuracy_heatmap",
-           "PART_COLOURS"]
+           "accuracy_figure", "confusion_heatmap", "confusion_figure", "PART_COLOURS"]
 
 PART_COLOURS = {"column": "#0072B2", "adapters": "#E69F00", "head": "#009E73"}
 BUDGET = "#D55E00"
+BEFORE_TRAINING = "#d9d9d9"  # hatched: a measurement, but not of a trained task
+NOT_APPLICABLE = "#f2f2f2"
 _STYLE = {
     "figure.dpi": 110, "savefig.dpi": 110, "font.size": 9, "axes.titlesize": 11,
     "axes.titleweight": "bold", "axes.labelsize": 9, "axes.spines.top": False,
@@ -160,20 +163,46 @@ def projected_growth(series: dict[str, Any]) -> bytes:
 
 
 def accuracy_heatmap(tasks: list[str], R: list[list[float | None]]) -> bytes:
-    """The accuracy matrix R[i][j]: accuracy on task j after growing task i."""
-    n = len(tasks)
+    """The accuracy matrix as PNG bytes (see ``accuracy_figure``)."""
     with plt.rc_context({**_STYLE, "axes.grid": False}):
-        size = max(3.2, 0.7 * n + 1.8)
-        fig, ax = plt.subplots(figsize=(size + 1.0, size))
-        data = [[math.nan if v is None else float(v) for v in row] for row in R]
-        cmap = plt.get_cmap("viridis").with_extremes(bad="#eeeeee")
-        im = ax.imshow(data, cmap=cmap, vmin=0.0, vmax=1.0)
+        return _png(accuracy_figure(tasks, R))
+
+
+def accuracy_figure(tasks: list[str], R: list[list[float | None]]) -> Any:
+    """The accuracy matrix R[i][j]: accuracy on task j after growing task i.
+
+    Only trained results (j <= i) are coloured by value. R[i-1][i], task i measured on the
+    untrained start of its own parts, is drawn hatched on grey with its value, and cells
+    that do not exist (task j has no parts yet) are plain grey; both have a legend entry,
+    so a before-training 0.011 never reads as a trained result.
+    """
+    n = len(tasks)
+    with plt.rc_context({**_STYLE, "axes.grid": False}):  # also when called on its own
+        size = max(3.4, 0.62 * n + 2.0)
+        fig, ax = plt.subplots(figsize=(size + 1.2, size + 0.4), layout="constrained")
+        trained = [[math.nan if j > i or R[i][j] is None else float(R[i][j])
+                    for j in range(n)] for i in range(n)]
+        cmap = plt.get_cmap("viridis").with_extremes(bad=NOT_APPLICABLE)
+        im = ax.imshow(trained, cmap=cmap, vmin=0.0, vmax=1.0)
+        font = 8 if n <= 8 else 6.5
+        before = absent = False
         for i in range(n):
             for j in range(n):
-                v = data[i][j]
-                text = "-" if math.isnan(v) else f"{v:.3f}"
-                ax.text(j, i, text, ha="center", va="center", fontsize=8,
-                        color="black" if math.isnan(v) or v > 0.6 else "white")
+                v = R[i][j] if j < len(R[i]) else None
+                if j <= i and v is not None:
+                    ax.text(j, i, f"{v:.3f}", ha="center", va="center", fontsize=font,
+                            color="black" if v > 0.6 else "white")
+                    continue
+                if j == i + 1 and v is not None:
+                    before = True
+                    ax.add_patch(Rectangle((j - 0.5, i - 0.5), 1, 1, facecolor=BEFORE_TRAINING,
+                                           hatch="///", edgecolor="#9a9a9a", linewidth=0))
+                    ax.text(j, i, f"{v:.3f}", ha="center", va="center", fontsize=font,
+                            color="#333333", style="italic",
+                            bbox={"facecolor": BEFORE_TRAINING, "edgecolor": "none",
+                                  "pad": 0.6})
+                else:
+                    absent = True
         ax.set_xticks(range(n))
         ax.set_yticks(range(n))
         ax.set_xticklabels(tasks, rotation=35, ha="right")
@@ -182,5 +211,59 @@ def accuracy_heatmap(tasks: list[str], R: list[list[float | None]]) -> bytes:
         ax.set_ylabel("after growing task")
         ax.set_title("Accuracy matrix R (validation)")
         bar = fig.colorbar(im, ax=ax, fraction=0.046, pad=0.04)
-        bar.set_label("accuracy (fraction correct)")
-        return _png(fig)
+        bar.set_label("accuracy of trained tasks (fraction correct)")
+        handles = []
+        if before:
+            handles.append(Patch(facecolor=BEFORE_TRAINING, hatch="///", edgecolor="#9a9a9a",
+                                 label="before training (task's untrained start)"))
+        if absent:
+            handles.append(Patch(facecolor=NOT_APPLICABLE, edgecolor="#bbbbbb",
+                                 label="not applicable (task not grown yet)"))
+        if handles:
+            fig.legend(handles=handles, loc="outside lower center", ncol=len(handles),
+                       fontsize=7.5)
+        return fig
+
+
+def confusion_heatmap(matrix: list[list[int]], classes: Sequence[str] | None = None,
+                      title: str = "Confusion on the probe") -> bytes:
+    """A confusion matrix as PNG bytes (see ``confusion_figure``)."""
+    with plt.rc_context({**_STYLE, "axes.grid": False}):
+        return _png(confusion_figure(matrix, classes, title))
+
+
+def confusion_figure(matrix: list[list[int]], classes: Sequence[str] | None = None,
+                     title: str = "Confusion on the probe") -> Any:
+    """A confusion matrix (rows true class, columns predicted) with the count in each cell.
+
+    Colour is the share of the true class (row-normalised), so a rare class that is
+    mostly missed stands out as much as a common one; the counts are printed as they are.
+    """
+    n = len(matrix)
+    names = list(classes) if classes else [str(c) for c in range(n)]
+    with plt.rc_context({**_STYLE, "axes.grid": False}):
+        size = max(2.4, 0.42 * n + 1.3)
+        fig, ax = plt.subplots(figsize=(size + 0.9, size))
+        share = []
+        for row in matrix:
+            total = sum(row)
+            share.append([c / total if total else math.nan for c in row])
+        cmap = plt.get_cmap("Blues").with_extremes(bad=NOT_APPLICABLE)
+        im = ax.imshow(share, cmap=cmap, vmin=0.0, vmax=1.0)
+        font = 8 if n <= 8 else (6.5 if n <= 14 else 5)
+        for i in range(n):
+            for j in range(n):
+                s = share[i][j]
+                ax.text(j, i, f"{matrix[i][j]:,}", ha="center", va="center", fontsize=font,
+                        color="white" if not math.isnan(s) and s > 0.55 else "black")
+        ax.set_xticks(range(n))
+        ax.set_yticks(range(n))
+        rotate = n > 4 or max((len(c) for c in names), default=0) > 4
+        ax.set_xticklabels(names, rotation=45 if rotate else 0, ha="right" if rotate else "center")
+        ax.set_yticklabels(names)
+        ax.set_xlabel("predicted class")
+        ax.set_ylabel("true class")
+        ax.set_title(title, fontsize=10)
+        bar = fig.colorbar(im, ax=ax, fraction=0.046, pad=0.04)
+        bar.set_label("share of the true class", fontsize=8)
+        return fig
