@@ -6,9 +6,9 @@ STAMP := $(VENV)/.installed
 # torch is pinned here (the CPU wheel); the package itself asks only for a range.
 TORCH_PIN := torch==2.13.0
 
-.PHONY: setup demo test bench lint graphviz clean
+.PHONY: setup demo test bench lint graphviz pdflibs clean
 
-setup: $(STAMP) graphviz
+setup: $(STAMP) graphviz pdflibs
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -24,6 +24,18 @@ graphviz:
 		apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq graphviz >/dev/null; \
 	else \
 		echo "note: graphviz's 'dot' is missing; install it (Debian: sudo apt-get install graphviz) to render diagrams"; \
+	fi
+
+# WeasyPrint (report.pdf) lays out text with Pango; poppler's pdftotext lets the tests read
+# the PDF back as a reader would see it. Both come from Debian.
+PDF_DEBS := libpango-1.0-0 libpangoft2-1.0-0 libharfbuzz-subset0 poppler-utils
+pdflibs:
+	@if command -v pdftotext >/dev/null 2>&1 && ldconfig -p 2>/dev/null | grep -q libpangoft2; then :; \
+	elif [ "$$(id -u)" = "0" ] && command -v apt-get >/dev/null 2>&1; then \
+		echo "installing $(PDF_DEBS) (for report.pdf)"; \
+		apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq $(PDF_DEBS) >/dev/null; \
+	else \
+		echo "note: install $(PDF_DEBS) (Debian) for report.pdf and its tests"; \
 	fi
 
 demo: setup

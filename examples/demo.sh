@@ -21,6 +21,8 @@ colonnade grow "$WS" --task pump_a_faults --train "$DATA/pump_a_faults.npz" --qu
 colonnade seal "$WS" --task pump_a_faults --probe "$DATA/pump_a_faults_probe.npz"
 colonnade grow "$WS" --task pump_b_faults --train "$DATA/pump_b_faults.npz" --quiet
 colonnade seal "$WS" --task pump_b_faults --probe "$DATA/pump_b_faults_probe.npz"
+# A copy as the workspace stood before its last task, for the closing 'diff'.
+rm -rf "$OUT/workspace_before_last_task" && cp -r "$WS" "$OUT/workspace_before_last_task"
 colonnade grow "$WS" --task pump_a_cavitation --train "$DATA/pump_a_cavitation.npz" --quiet
 # Before sealing it: how much does the new task use each lateral adapter? Trim what it can
 # do without, at most 0.5 accuracy points lost on a separate draw of the same pumps.
@@ -50,7 +52,7 @@ else  # without graphviz's dot only the DOT source can be written
   echo "note: install graphviz (Debian: apt-get install graphviz) to render the diagrams"
 fi
 
-echo "== 8. a report for the design review: markdown, self-contained HTML, JSON"
+echo "== 8. the review pack: evidence first, as markdown, self-contained HTML, PDF and JSON"
 colonnade report "$WS" -o "$OUT/report" --hardware vibe-node --project 10
 
 echo "== 9. every task in one pass (each column once), and one task shipped alone"
@@ -59,7 +61,10 @@ colonnade export "$WS" --task pump_a_cavitation -o "$OUT/pump_a_cavitation.pt"
 colonnade export "$WS" --task pump_a_cavitation -o "$OUT/pump_a_cavitation.onnx"
 
 echo "== last: every seal checked, bit for bit (exits non-zero if any task moved)"
-# Keep this the last step: the demo ends with every sealed task checking exact.
+# Keep these last: every sealed task checks exact, and the last task moved none of them.
 colonnade check "$WS"
+
+echo "== what changed with the last task (exits non-zero if a task sealed before it moved)"
+colonnade diff "$OUT/workspace_before_last_task" "$WS"
 
 echo "== done: everything is under $OUT/"

@@ -69,7 +69,7 @@ def test_report_files(grown_ws, tmp_path):
     out = tmp_path / "report"
     result = write_report(grown_ws, out, hardware=SPECS / "hardware" / "vibe-node.yaml",
                           project_n=4, repeats=2)
-    assert {"report.md", "report.html", "report.json"} <= set(result["files"])
+    assert {"report.md", "report.html", "report.json", "report.pdf"} <= set(result["files"])
     data = json.loads((out / "report.json").read_text())  # the JSON loads
     ledger = data["ledger"]
     assert [t["task"] for t in ledger["tasks"]] == ["perm0", "perm1"]
@@ -118,7 +118,8 @@ def test_report_of_an_empty_workspace(tmp_path):
 
 def test_report_cli_and_bad_input(grown_ws, tmp_path, capsys):
     out = tmp_path / "cli"
-    assert main(["report", str(grown_ws), "-o", str(out), "--no-latency", "--project", "2"]) == 0
+    assert main(["report", str(grown_ws), "-o", str(out), "--no-latency", "--project", "2",
+                 "--no-pdf"]) == 0
     assert "report.html" in capsys.readouterr().out
     assert json.loads((out / "report.json").read_text())["ledger"]["projection"]
     # A file where the folder should be: one sentence, exit 2, nothing written.

@@ -55,6 +55,7 @@ _PUBLIC: dict[str, tuple[str, str | None]] = {
     "cost_workspace": ("colonnade.app.views", "cost_workspace"),
     "write_report": ("colonnade.app.views", "write_report"),
     "draw_workspace": ("colonnade.app.views", "draw_workspace"),
+    "diff_workspaces": ("colonnade.app.diff", "diff_workspaces"),
     "usage_workspace": ("colonnade.app.trim", "usage_workspace"),
     "trim_workspace": ("colonnade.app.trim", "trim_workspace"),
     "export_task": ("colonnade.app.export", "export_task"),

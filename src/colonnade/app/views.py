@@ -10,8 +10,10 @@ from ..costing.ledger import cost_network
 from ..errors import ColonnadeError, UsageError
 from ..files.store import atomic_write
 from ..model.network import ProgressiveNet
+from ..views.diff import changes_section
 from ..views.draw import INSTALL_HINT, GraphvizMissingError, auto_compact, format_of, to_dot
 from ..views.report import DEFAULT_PROJECT, build_report
+from .diff import fresh_check, since_diff
 from .transaction import read_workspace
 
 __all__ = ["cost_workspace", "write_report", "draw_workspace", "render"]
@@ -19,15 +21,28 @@ __all__ = ["cost_workspace", "write_report", "draw_workspace", "render"]
 
 def write_report(folder: str | Path, out: str | Path, hardware: str | Path | None = None,
                  project_n: int = DEFAULT_PROJECT, latency: bool = True, repeats: int = 20,
+                 since: str | int | None = None, pdf: bool = True, check: bool = True,
                  ) -> dict[str, Any]:
-    """``colonnade report``: build the report of a workspace and write it into ``out``."""
+    """``colonnade report``: build the report of a workspace and write it into ``out``.
+
+    The report opens with a fresh ``check`` of every sealed task (``check=False`` skips
+    it and says so); ``since`` (a history entry number) adds what changed since then.
+    Every file is made in memory first, the PDF included, then each is written atomically.
+    """
     out = Path(out)
     if out.exists() and not out.is_dir():
         raise UsageError(f"{out}: exists and is not a folder; give a folder for the report")
     profile = load_profile(hardware) if hardware is not None else None
+    folder = Path(folder)
     net = read_workspace(folder)
-    files = build_report(net, Path(folder).name or str(folder), profile, project_n, latency,
-                         repeats)
+    checked = fresh_check(folder, net) if check else None
+    changes = changes_data = None
+    if since is not None:
+        changes_data = since_diff(folder, net, since, checked, profile)
+        changes = changes_section(changes_data)
+    files = build_report(net, folder.resolve().name or str(folder), profile, project_n,
+                         latency, repeats, check=checked, changes=changes,
+                         changes_data=changes_data, pdf=pdf)
     out.mkdir(parents=True, exist_ok=True)
     for name, data in files.items():
         atomic_write(out / name, data)

@@ -125,7 +125,8 @@ def _report(args: argparse.Namespace) -> int:
 
     result = write_report(args.workspace, args.output, hardware=args.hardware,
                           project_n=args.project, latency=not args.no_latency,
-                          repeats=args.repeats)
+                          repeats=args.repeats, since=args.since, pdf=not args.no_pdf,
+                          check=not args.no_check)
     print(f"wrote {', '.join(result['files'])} to {result['output']}")
     return 0
 
@@ -166,10 +167,17 @@ def add_parsers(verb: Any) -> None:
                    help="a hardware profile YAML, or a name in specs/hardware/")
     _latency_flags(p)
 
-    p = verb("report", _report, "write report.md, a self-contained report.html and "
-                                "report.json with plots")
+    p = verb("report", _report, "write the review pack: report.md, a self-contained "
+                                "report.html, report.pdf and report.json with plots; the "
+                                "evidence (seals, a fresh check, the history) first")
     p.add_argument("workspace")
     p.add_argument("-o", "--output", required=True, help="folder for the report files")
+    p.add_argument("--since", metavar="ENTRY",
+                   help="add what changed since history entry ENTRY (as 'colonnade diff "
+                        "WS --since ENTRY' prints it)")
+    p.add_argument("--no-pdf", action="store_true", help="skip report.pdf")
+    p.add_argument("--no-check", action="store_true",
+                   help="do not repeat the seals' computations for the report (it says so)")
     p.add_argument("--hardware", metavar="PROFILE",
                    help="a hardware profile YAML, or a name in specs/hardware/")
     p.add_argument("--project", type=positive_int, default=10, metavar="N",

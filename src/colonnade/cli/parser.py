@@ -8,6 +8,7 @@ from typing import NoReturn
 
 from .._version import __version__
 from .cost_cmds import add_parsers as add_cost_verbs
+from .diff_cmds import add_parsers as add_diff_verbs
 from .evidence_cmds import add_parsers as add_evidence_verbs
 from .export_cmds import add_parsers as add_export_verbs
 from .trim_cmds import add_parsers as add_trim_verbs
@@ -17,7 +18,7 @@ __all__ = ["build_parser", "Parser", "short_usage"]
 
 # The verb groups, in the order of ``colonnade --help``.
 GROUPS = (add_workspace_verbs, add_evidence_verbs, add_export_verbs, add_cost_verbs,
-          add_trim_verbs)
+          add_trim_verbs, add_diff_verbs)
 
 
 class Parser(argparse.ArgumentParser):

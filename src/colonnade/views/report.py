@@ -11,9 +11,8 @@ memory first, then each file is written atomically.
 
 from __future__ import annotations
 
-import base64
-import html
 import json
+from collections.abc import Mapping
 from typing import Any
 
 from .._version import __version__
@@ -23,12 +22,15 @@ from ..costing.ledger import cost_network
 from ..evidence.transfer import record
 from ..model.guard import sealed_tasks
 from ..model.network import ProgressiveNet
+from .document import Figure, Section, Table, to_html, to_markdown
 from .draw import to_dot
+from .evidence_sections import evidence_data, seal_sections, summary_section, timeline_section
+from .pdf import html_to_pdf
 from .plots import accuracy_heatmap, macs_per_task, params_per_task, projected_growth
 
 __all__ = ["build_report", "accuracy_record", "diagram_svg", "REPORT_FILES"]
 
-REPORT_FILES = ("report.md", "report.html", "report.json")
+REPORT_FILES = ("report.md", "report.html", "report.json", "report.pdf")
 DEFAULT_PROJECT = 10
 
 
@@ -45,8 +47,8 @@ def accuracy_record(net: ProgressiveNet) -> dict[str, Any] | None:
     return rec
 
 
-def diagram_svg(net: ProgressiveNet) -> tuple[bytes | None, str]:
-    """The architecture diagram as SVG, or None and the reason it is missing."""
+def diagram_svg(net: ProgressiveNet, fmt: str = "svg") -> tuple[bytes | None, str]:
+    """The architecture diagram (SVG, or PNG at 144 dpi), or None and why it is missing."""
     if not net.columns:
         return None, "the network has no column yet"
     try:
@@ -54,8 +56,8 @@ def diagram_svg(net: ProgressiveNet) -> tuple[bytes | None, str]:
     except ImportError:
         return None, "the graphviz Python package is not installed (pip install graphviz)"
     try:
-        dot = to_dot(net, compact=len(net.columns) > 4)
-        return dot.pipe(format="svg", engine="dot", quiet=True), ""
+        dot = to_dot(net, dpi=144 if fmt == "png" else None)  # compact from 8 tasks on
+        return dot.pipe(format=fmt, engine="dot", quiet=True), ""
     except graphviz.ExecutableNotFound:
         return None, ("graphviz's dot program is not installed (Debian: sudo apt-get install "
                       "graphviz)")
@@ -109,9 +111,8 @@ def _ms(lat: dict[str, Any] | None) -> str:
     return f"{lat['median']:.3f} ({lat['q1']:.3f}-{lat['q3']:.3f})"
 
 
-def _sections(ledger: dict[str, Any], accuracy: dict[str, Any] | None,
-              ) -> list[tuple[str, list[str], list[list[str]] | None, str]]:
-    """(title, paragraphs, table rows with a header row first, figure name) per section."""
+def _cost_sections(ledger: dict[str, Any], accuracy: dict[str, Any] | None) -> list[Section]:
+    """Costs now, compute, projection, device verdicts, priced options, accuracy matrix."""
     out = []
     conv = ledger["conventions"]
     rows = [["task", "mode", "params added", "params on path", "column", "adapters", "head",
@@ -133,15 +134,16 @@ def _sections(ledger: dict[str, Any], accuracy: dict[str, Any] | None,
                  format_bytes(tot["weight_bytes"]["int8"]),
                  format_bytes(tot["activation_bytes"]), _ms(tot["latency_ms"]["batch_1"]),
                  _ms(tot["latency_ms"]["batch_64"])])
-    out.append(("What each task costs now",
-                [f"Network {ledger['spec']!r}, input {ledger['input']}, lateral adapters "
-                 f"{ledger['lateral']}: {ledger['total']['tasks']} tasks on "
-                 f"{ledger['total']['columns']} columns.",
-                 conv["macs"] + ".", conv["activation_bytes"] + ".",
-                 "Latency: " + conv["latency_ms"] + "."], rows, "params_per_task.png"))
-    out.append(("Compute per task", ["MACs on each task's inference path at batch 1, by "
-                                     "part. " + conv["flops"] + "."], None,
-                "macs_per_task.png"))
+    out.append(Section("What each task costs now", paragraphs=[
+        f"Network {ledger['spec']!r}, input {ledger['input']}, lateral adapters "
+        f"{ledger['lateral']}: {ledger['total']['tasks']} tasks on "
+        f"{ledger['total']['columns']} columns.",
+        conv["macs"] + ".", conv["activation_bytes"] + ".",
+        "Latency: " + conv["latency_ms"] + "."], tables=[Table(rows)],
+        figures=[Figure("params_per_task.png", "parameters per task")], anchor="costs"))
+    out.append(Section("Compute per task", paragraphs=[
+        "MACs on each task's inference path at batch 1, by part. " + conv["flops"] + "."],
+        figures=[Figure("macs_per_task.png", "MACs per task")]))
     proj = ledger.get("projection")
     if proj:
         prow = [["future task", "column", "width", "params added", "params on path",
@@ -151,8 +153,9 @@ def _sections(ledger: dict[str, Any], accuracy: dict[str, Any] | None,
                          _n(p["params_path"]), _n(p["macs"]), _n(p["network_params"]),
                          format_bytes(p["network_weight_bytes"]["fp32"]),
                          format_bytes(p["activation_bytes"])])
-        out.append((f"The next {len(proj['tasks'])} tasks",
-                    ["Growth rule: " + proj["rule"]["text"] + "."], prow, None))
+        out.append(Section(f"The next {len(proj['tasks'])} tasks",
+                           paragraphs=["Growth rule: " + proj["rule"]["text"] + "."],
+                           tables=[Table(prow)]))
     hw = ledger.get("hardware")
     paragraphs = []
     vrows = None
@@ -180,9 +183,11 @@ def _sections(ledger: dict[str, Any], accuracy: dict[str, Any] | None,
                           format_bytes(v["need"]["weight_bytes"]),
                           format_bytes(v["need"]["activation_bytes"]),
                           f"{v['need']['latency_ms']:.3g}", verdict_text(v)])
-    out.append(("Growth against the device" if hw else "Projected growth",
-                paragraphs or ["No hardware profile given; pass --hardware PROFILE to "
-                               "draw the device's budget lines."], vrows, "growth.png"))
+    out.append(Section("Growth against the device" if hw else "Projected growth",
+                       paragraphs=paragraphs or ["No hardware profile given; pass --hardware "
+                                                 "PROFILE to draw the device's budget lines."],
+                       tables=[Table(vrows)] if vrows else [],
+                       figures=[Figure("growth.png", "growth against the budget")]))
     if hw and hw["options"]:
         orows = [["option", "status", "first task over budget", "weights at last task",
                   "latency ms at last task", "note"]]
@@ -191,84 +196,35 @@ def _sections(ledger: dict[str, Any], accuracy: dict[str, Any] | None,
             orows.append([o["what"], o["status"], o["first_break"] or "none (all fit)",
                           format_bytes(last.get("weight_bytes", 0)),
                           f"{last.get('latency_ms', 0):.3g}", o["note"] or ""])
-        out.append(("Options, priced", ["Each option re-projects the same future tasks."],
-                    orows, None))
+        out.append(Section("Options, priced",
+                           paragraphs=["Each option re-projects the same future tasks."],
+                           tables=[Table(orows)]))
     if accuracy:
         acc = ", ".join(f"{k} {accuracy[k]:+.4f}" if k != "ACC" else f"ACC {accuracy[k]:.4f}"
                         for k in ("ACC", "BWT", "FWT") if accuracy.get(k) is not None)
-        out.append(("Accuracy matrix",
-                    [f"R[i][j]: validation accuracy on task j after growing task i "
-                     f"({accuracy.get('definition', 'Lopez-Paz & Ranzato 2017')})."
-                     + (f" {acc}." if acc else "")], None, "accuracy.png"))
+        out.append(Section("Accuracy matrix", paragraphs=[
+            f"R[i][j]: validation accuracy on task j after growing task i "
+            f"({accuracy.get('definition', 'Lopez-Paz & Ranzato 2017')})."
+            + (f" {acc}." if acc else "")
+            + " Hatched cells: a task measured on the untrained start of its own parts, "
+              "before training; grey: the task did not exist yet."],
+            figures=[Figure("accuracy.png", "accuracy matrix")]))
     return out
-
-
-def _markdown(title: str, sections: list, figures: dict[str, bytes], notes: list[str]) -> str:
-    lines = [f"# {title}", ""]
-    for name, paragraphs, rows, figure in sections:
-        lines += [f"## {name}", ""]
-        for p in paragraphs:
-            lines += [p, ""]
-        if rows:
-            lines.append("| " + " | ".join(rows[0]) + " |")
-            lines.append("|" + "---|" * len(rows[0]))
-            for r in rows[1:]:
-                lines.append("| " + " | ".join(c.replace("|", "\\|") for c in r) + " |")
-            lines.append("")
-        if figure and figure in figures:
-            lines += [f"![{name}]({figure})", ""]
-    if "architecture.svg" in figures:
-        lines += ["## Architecture", "", "![architecture](architecture.svg)", ""]
-    for n in notes:
-        lines += [f"*{n}*", ""]
-    return "\n".join(lines)
-
-
-_CSS = """body{font-family:system-ui,-apple-system,'Segoe UI',sans-serif;max-width:1100px;
-margin:2em auto;padding:0 1em;color:#222;line-height:1.45}
-h1{font-size:1.6em;border-bottom:2px solid #0072B2;padding-bottom:.2em}
-h2{font-size:1.2em;margin-top:1.8em;color:#0072B2}
-table{border-collapse:collapse;font-size:.85em;margin:.6em 0;display:block;overflow-x:auto}
-th,td{border:1px solid #ddd;padding:.25em .55em;text-align:right;white-space:nowrap}
-th{background:#f3f6fa}td:first-child,th:first-child{text-align:left}
-img{max-width:100%;height:auto;margin:.5em 0}.note{color:#666;font-style:italic}"""
-
-
-def _img(name: str, data: bytes, alt: str) -> str:
-    mime = "image/svg+xml" if name.endswith(".svg") else "image/png"
-    return (f'<img alt="{html.escape(alt)}" '
-            f'src="data:{mime};base64,{base64.b64encode(data).decode("ascii")}">')
-
-
-def _html(title: str, sections: list, figures: dict[str, bytes], notes: list[str]) -> str:
-    e = html.escape
-    parts = ["<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
-             f"<title>{e(title)}</title><style>{_CSS}</style></head><body>",
-             f"<h1>{e(title)}</h1>"]
-    for name, paragraphs, rows, figure in sections:
-        parts.append(f"<h2>{e(name)}</h2>")
-        parts += [f"<p>{e(p)}</p>" for p in paragraphs]
-        if rows:
-            parts.append("<table><thead><tr>" + "".join(f"<th>{e(c)}</th>" for c in rows[0])
-                         + "</tr></thead><tbody>")
-            parts += ["<tr>" + "".join(f"<td>{e(c)}</td>" for c in r) + "</tr>"
-                      for r in rows[1:]]
-            parts.append("</tbody></table>")
-        if figure and figure in figures:
-            parts.append(_img(figure, figures[figure], name))
-    if "architecture.svg" in figures:
-        parts += ["<h2>Architecture</h2>",
-                  _img("architecture.svg", figures["architecture.svg"], "architecture")]
-    parts += [f'<p class="note">{e(n)}</p>' for n in notes]
-    parts.append("</body></html>")
-    return "\n".join(parts)
 
 
 # ----------------------------------------------------------------------------- public
 def build_report(net: ProgressiveNet, name: str, hardware: Any = None,
                  project_n: int = DEFAULT_PROJECT, latency: bool = True, repeats: int = 20,
+                 check: Mapping[str, Any] | None = None, record: Mapping[str, Any] | None = None,
+                 changes: Section | None = None, changes_data: Any = None, pdf: bool = True,
                  ) -> dict[str, bytes]:
-    """Every report file by name, as bytes (nothing is written)."""
+    """Every report file by name, as bytes (nothing is written).
+
+    ``check`` is the result of a fresh ``check`` of the workspace (``CheckReport.to_dict``),
+    run by the caller that opened it; ``record`` the record's own verification;
+    ``changes`` a "what changed" section (``diff``) to put after the history.
+    """
+    generated = now()
     ledger = cost_network(net, project_n=project_n if net.tasks else 0, hardware=hardware,
                           latency=latency, repeats=repeats)
     accuracy = accuracy_record(net)
@@ -286,19 +242,41 @@ def build_report(net: ProgressiveNet, name: str, hardware: Any = None,
     else:
         notes.append("No accuracy matrix: the workspace holds no per-task validation "
                      "record yet.")
+    seals, confusion = seal_sections(net, check)
+    figures.update(confusion)
+    sections = [summary_section(net, check, ledger, record, generated), *seals,
+                timeline_section(net)]
+    if changes is not None:
+        sections.append(changes)
+    sections += _cost_sections(ledger, accuracy)
+    extra: dict[str, bytes] = {}  # files written beside the report, not shown in it
     svg, why = diagram_svg(net)
     if svg is not None:
-        figures["architecture.svg"] = svg
+        # The pages show the PNG (a picture, so no diagram label can pass for report text);
+        # the SVG is written beside it for zooming in.
+        extra["architecture.svg"] = svg
+        png, why = diagram_svg(net, "png")
+    if svg is not None and png is not None:
+        figures["architecture.png"] = png
+        sections.append(Section("Architecture", figures=[Figure("architecture.png",
+                                                                "architecture")],
+                                after=["The same diagram as a vector drawing: "
+                                       "architecture.svg."]))
     else:
         notes.append(f"No architecture diagram: {why}.")
     title = f"colonnade report: {name}"
-    sections = _sections(ledger, accuracy)
-    notes.append(f"Generated {now()} by colonnade {__version__}. Costs are derived from "
+    notes.append(f"Generated {generated} by colonnade {__version__}. Costs are derived from "
                  f"shapes; latency is measured on the machine that wrote this report.")
-    data = {"title": title, "generated": now(), "colonnade": __version__, "ledger": ledger,
-            "accuracy": accuracy, "figures": sorted(figures), "notes": notes}
-    files = {n: d for n, d in figures.items()}
-    files["report.md"] = _markdown(title, sections, figures, notes).encode("utf-8")
-    files["report.html"] = _html(title, sections, figures, notes).encode("utf-8")
+    data = {"title": title, "generated": generated, "colonnade": __version__,
+            "evidence": evidence_data(net, check, record, generated), "ledger": ledger,
+            "accuracy": accuracy, "changes": changes_data, "figures": sorted(figures),
+            "notes": notes}
+    files = {**figures, **extra}
+    files["report.md"] = to_markdown(title, sections, figures, notes).encode("utf-8")
+    page = to_html(title, sections, figures, notes, f"workspace: {name}",
+                   f"generated {generated}")
+    files["report.html"] = page.encode("utf-8")
     files["report.json"] = (json.dumps(data, indent=2, default=str) + "\n").encode("utf-8")
+    if pdf:
+        files["report.pdf"] = html_to_pdf(page)
     return files
