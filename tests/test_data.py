@@ -40,10 +40,21 @@ def test_csv_with_label_column(tmp_path):
     assert d.y.tolist() == [1, 0, 1, 0]
 
 
-def test_flat_rows_reshape_to_a_shaped_input(tmp_path):
-    x, y = _good(f=8)
-    d = load_task_data(_npz(tmp_path / "a.npz", x=x, y=y), (2, 4), split=False)
-    assert tuple(d.x.shape) == (40, 2, 4)
+def test_flat_csv_rows_reshape_to_a_shaped_input(tmp_path):
+    # A CSV row is flat by nature, so it may fill a shaped input in row-major order.
+    p = tmp_path / "a.csv"
+    p.write_text("a,b,c,d,label\n1,2,3,4,0\n5,6,7,8,1\n")
+    d = load_task_data(p, (2, 2), split=False)
+    assert d.x.tolist() == [[[1, 2], [3, 4]], [[5, 6], [7, 8]]]
+
+
+def test_an_array_in_another_layout_is_refused_naming_both_shapes(tmp_path):
+    # Issue 14 item 1: [N, 256, 3] for an input [3, 256] was silently reshaped before.
+    x = np.zeros((6, 256, 3), np.float32)
+    with pytest.raises(DataError, match=r"sample shape \[256, 3\], but the spec's input is \[3, 256\]"):
+        load_task_data(_npz(tmp_path / "t.npz", x=x, y=np.arange(6) % 2), (3, 256))
+    with pytest.raises(DataError, match=r"sample shape \[2, 64\], but the spec's input is \[128\]"):
+        load_task_data(_npz(tmp_path / "f.npz", x=np.zeros((6, 2, 64), np.float32), y=np.arange(6) % 2), (128,))
 
 
 def test_stratified_split_keeps_every_class_on_both_sides():
@@ -63,7 +74,7 @@ def _cases(tmp_path):
     (tmp_path / "junk.npz").write_bytes(b"not a zip file")
     return [
         (_npz(tmp_path / "shape.npz", x=x[:, :5], y=y), "sample shape [5], but the spec's input"),
-        (_npz(tmp_path / "nan.npz", x=bad_x, y=y), "holds 1 non-finite values"),
+        (_npz(tmp_path / "nan.npz", x=bad_x, y=y), "holds 1 non-finite value"),
         (_npz(tmp_path / "neg.npz", x=x, y=y - 1), "negative labels (the smallest is -1)"),
         (_npz(tmp_path / "len.npz", x=x, y=y[:-3]), "x has 40 samples but y has 37 labels"),
         (_npz(tmp_path / "float.npz", x=x, y=y + 0.5), "whole-number class labels"),
@@ -74,9 +85,9 @@ def _cases(tmp_path):
         (tmp_path / "junk.npz", "cannot read as .npz"),
         (tmp_path / "empty.csv", "the file is empty"),
         (tmp_path / "nolabel.csv", "no column named 'label'"),
-        (tmp_path / "text.csv", "line 2 holds a value that is not a number"),
+        (tmp_path / "text.csv", "line 2, column 'a' holds 'x', not a number"),
         (tmp_path / "missing.npz", "no such data file"),
-        (tmp_path, "is a folder"),
+        (tmp_path, "holds files but no class folders"),
         (tmp_path / "a.txt", "no such data file"),
     ]
 

@@ -13,7 +13,7 @@ from __future__ import annotations
 import logging
 import os
 import tempfile
-from dataclasses import dataclass
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -24,8 +24,10 @@ import torch.multiprocessing as mp
 from ..errors import UsageError
 from ..files.store import load, save
 from ..model.device import resolve_device
+from ..model.schema import Spec
 from ..training.checks import check_training_data
-from ..training.data import TaskData, load_task_data
+from ..training.data import TaskData, load_for_spec
+from ..training.datasets import subset
 from ..training.distributed import (
     DistributedHooks,
     WorkerFailed,
@@ -35,7 +37,24 @@ from ..training.distributed import (
 )
 from ..training.growth import grow
 
-__all__ = ["GrowRequest", "grow_distributed", "run_rank", "run_torchrun_rank"]
+__all__ = ["DataOptions", "growth_data", "GrowRequest", "grow_distributed", "run_rank",
+           "run_torchrun_rank"]
+
+
+@dataclass
+class DataOptions:
+    """How to read a task's data files beyond the path: labels file, bad files, names."""
+
+    labels: str | None = None
+    skip_bad: bool = False
+    class_names: list[str] | None = None
+
+
+def growth_data(spec: Spec, train: str | Path, val: str | Path | None, classes: int | None,
+                options: DataOptions) -> TaskData:
+    """A new task's data as every rank (and a single process) reads it."""
+    return load_for_spec(train, spec, classes=classes, val_path=val, labels=options.labels,
+                         skip_bad=options.skip_bad, class_names=options.class_names)
 
 
 @dataclass
@@ -55,6 +74,7 @@ class GrowRequest:
     cache: bool | None = None
     cache_mb: float | None = None
     target: float | None = None
+    data: DataOptions = field(default_factory=lambda: DataOptions())
 
 
 def run_rank(rank: int, world: int, request: GrowRequest, staging: str | None,
@@ -69,15 +89,13 @@ def run_rank(rank: int, world: int, request: GrowRequest, staging: str | None,
         dist.init_process_group(backend, rank=rank, world_size=world)
     try:
         net = load(request.folder)
-        data = load_task_data(request.train, net.input_shape, classes=request.classes,
-                              val_path=request.val, val_fraction=net.spec.train.val_fraction,
-                              seed=net.spec.train.seed)
+        data = growth_data(net.spec, request.train, request.val, request.classes,
+                           request.data)
         found = check_training_data(data.y, data.y_val, data.classes, data.source,
                                     classes_given=request.classes is not None,
                                     warn=rank == 0)  # on the whole data, not a shard
         rows = shard_rows(data.n_train, rank, world, net.spec.train.seed)
-        shard = TaskData(data.x[rows], data.y[rows], data.x_val, data.y_val, data.classes,
-                         data.source)
+        shard = replace(data, x=subset(data.x, rows), y=data.y[rows])
         ddp = DistributedHooks(rank, world, device, fault_hook(rank))
         entry = grow(net, request.task, shard, mode=request.mode, on=request.on,
                      width=request.width, epochs=request.epochs, device=str(device),

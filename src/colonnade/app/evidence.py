@@ -18,13 +18,18 @@ __all__ = ["seal_workspace", "unseal_workspace", "check_workspace"]
 
 
 def seal_workspace(folder: str | Path, task: str, probe: str | Path,
-                   device: str | None = None) -> dict[str, Any]:
-    """``colonnade seal``: seal a task of a workspace on a probe file, commit once."""
+                   device: str | None = None, labels: str | Path | None = None,
+                   ) -> dict[str, Any]:
+    """``colonnade seal``: seal a task of a workspace on a probe, commit once.
+
+    ``probe`` is a labelled file or class folder, or a .npy of samples with ``labels``.
+    """
     with writing(folder, "seal") as tx:
         net = tx.net
         net.task(task)
         net.to(resolve_device(device))
-        return seal_task(net, task, load_probe(probe, net, task, relative_to=folder))
+        return seal_task(net, task, load_probe(probe, net, task, relative_to=folder,
+                                               labels=labels))
 
 
 def unseal_workspace(folder: str | Path, task: str, reason: str) -> dict[str, Any]:

@@ -36,6 +36,26 @@ def _summary(folder: str | Path, manifest: dict[str, Any]) -> dict[str, Any]:
     return summary_module.network_summary(store.load(folder))
 
 
+def _input_shape(raw: Any) -> list[int]:
+    """The sample shape from the spec's ``input``: a list, or ``{shape: [...], ...}``."""
+    return list((raw.get("shape") if isinstance(raw, dict) else raw) or [])
+
+
+def _normalization(raw: Any, history: list[dict[str, Any]]) -> dict[str, Any] | None:
+    """The input normalisation: from the spec, or as fitted on the first task (history)."""
+    norm = raw.get("normalize") if isinstance(raw, dict) else None
+    if isinstance(norm, dict):
+        return {"mean": norm.get("mean"), "std": norm.get("std"), "from": "spec"}
+    if norm == "fit":
+        for entry in history:
+            fitted = entry.get("input_normalization")
+            if isinstance(fitted, dict):
+                return {"mean": fitted.get("mean"), "std": fitted.get("std"),
+                        "from": f"fitted on task {entry.get('task')!r}"}
+        return {"mean": None, "std": None, "from": "fit on the first task (none yet)"}
+    return None
+
+
 def describe(folder: str | Path) -> dict[str, Any]:
     """What ``show`` prints: tasks, columns, heads, adapters and parameter counts."""
     manifest = read_manifest(folder)
@@ -65,6 +85,7 @@ def _describe(folder: str | Path, manifest: dict[str, Any], summary: dict[str, A
             "closure_columns": list(sizes["closure_columns"]),
             "params_path": sizes["params_path"],
             "seal": seals[name]["version"] if name in seals else None,
+            "class_names": t.get("class_names"),
         })
     columns = [{"column": c["index"], "task": c["task"], "width": float(c["width"]),
                 "params": summary["columns"][str(c["index"])]}
@@ -78,7 +99,8 @@ def _describe(folder: str | Path, manifest: dict[str, Any], summary: dict[str, A
     return {
         "workspace": str(folder),
         "spec": spec.get("name", "network"),
-        "input": list(spec.get("input") or []),
+        "input": _input_shape(spec.get("input")),
+        "normalization": _normalization(spec.get("input"), history),
         "lateral": lateral.get("kind", "nonlinear"),
         "tasks": tasks,
         "columns": columns,

@@ -7,9 +7,9 @@ from typing import Any
 
 from ..errors import UsageError
 from ..files.store import atomic_write
-from ..model.digest import file_digest
 from ..model.network import ProgressiveNet
-from ..training.data import load_task_data
+from ..training.data import load_for_spec
+from ..training.sources import source_digest
 from ..trimming.ownership import refuse_sealed
 from ..trimming.trim import TrimReport, check_trim_args, trim
 from ..trimming.usage import UsageReport, measure, record_usage, task_adapters
@@ -45,14 +45,14 @@ def usage_workspace(folder: str | Path, task: str, data: str | Path,
 def _score(net: ProgressiveNet, task: str, data: str | Path, noise: float, repeats: int,
            ) -> UsageReport:
     info = net.task(task)
-    loaded = load_task_data(data, net.input_shape, classes=info.classes, need_labels=True,
-                            split=False)
+    loaded = load_for_spec(data, net.spec, classes=info.classes, class_names=info.class_names,
+                           need_labels=True, split=False)
     if not task_adapters(net, task):
         raise UsageError(f"task {task!r} has no live lateral adapters, so there is nothing "
                          f"to score")
     report = measure(net, task, loaded.x, loaded.y, noise=noise, repeats=repeats,
                      seed=net.spec.train.seed)
-    report.data = {"source": str(data), "sha256": file_digest(data)}
+    report.data = {"source": str(data), "sha256": source_digest(data)}
     record_usage(net, report)
     return report
 
@@ -76,13 +76,12 @@ def _trim(net: ProgressiveNet, task: str, data: str | Path, max_drop: float,
     info = net.task(task)
     refuse_sealed(net, task)
     check_trim_args(max_drop, target_params, target_macs, finetune, train is not None)
-    loaded = load_task_data(data, net.input_shape, classes=info.classes, need_labels=True,
-                            split=False)
+    loaded = load_for_spec(data, net.spec, classes=info.classes, class_names=info.class_names,
+                           need_labels=True, split=False)
     train_data = None
     if finetune:
-        train_data = load_task_data(train, net.input_shape, classes=info.classes,
-                                    val_fraction=net.spec.train.val_fraction,
-                                    seed=net.spec.train.seed)
+        train_data = load_for_spec(train, net.spec, classes=info.classes,
+                                   class_names=info.class_names)
     report = trim(net, task, loaded, max_drop=max_drop, target_params=target_params,
                   target_macs=target_macs, finetune=finetune, train=train_data, merge=merge,
                   progress=progress)

@@ -6,7 +6,7 @@ import argparse
 import math
 
 __all__ = ["positive_int", "positive_float", "non_negative_float", "non_negative_int",
-           "class_count"]
+           "class_count", "name_list"]
 
 
 def positive_int(text: str) -> int:
@@ -55,3 +55,15 @@ def non_negative_int(text: str) -> int:
     if value < 0:
         raise argparse.ArgumentTypeError(f"expected a whole number of at least 0, got {value}")
     return value
+
+
+def name_list(text: str) -> list[str]:
+    """Comma-separated names, such as class names: none empty, none twice."""
+    names = [n.strip() for n in text.split(",")]
+    if any(not n for n in names):
+        raise argparse.ArgumentTypeError(f"expected names separated by commas, got {text!r}")
+    twice = sorted({n for n in names if names.count(n) > 1})
+    if twice:
+        raise argparse.ArgumentTypeError(f"each name may appear once; {', '.join(twice)} "
+                                         f"appear twice")
+    return names

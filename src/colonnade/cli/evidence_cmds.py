@@ -16,7 +16,8 @@ __all__ = ["add_parsers"]
 def _seal(args: argparse.Namespace) -> int:
     from ..app.evidence import seal_workspace
 
-    entry = seal_workspace(args.workspace, args.task, args.probe, device=args.device)
+    entry = seal_workspace(args.workspace, args.task, args.probe, device=args.device,
+                           labels=args.probe_labels)
     m, c = entry["metrics"], entry["closure"]
     print(f"sealed task {entry['task']!r} as seal v{entry['version']}: closure SHA-256 "
           f"{c['sha256'][:16]}... over {len(c['tensors'])} tensors, probe accuracy "
@@ -76,7 +77,11 @@ def add_parsers(verb: Any) -> None:
                             "probe set")
     p.add_argument("workspace")
     p.add_argument("--task", required=True)
-    p.add_argument("--probe", required=True, help="labelled probe data (.npz or .csv)")
+    p.add_argument("--probe", required=True,
+                   help="labelled probe data: .npz, .csv, a class folder, or a .npy of samples "
+                        "with --probe-labels")
+    p.add_argument("--probe-labels", metavar="LABELS.npy",
+                   help="with a .npy probe: its labels")
     p.add_argument("--device", default="cpu", help="where the reference is computed: cpu "
                                                    "(default) or cuda")
 

@@ -7,7 +7,9 @@ from typing import Any
 
 from .argtypes import (
     class_count,
+    name_list,
     non_negative_float,
+    non_negative_int,
     positive_float,
     positive_int,
 )
@@ -33,7 +35,9 @@ def _grow(args: argparse.Namespace) -> int:
                            on=args.on, width=args.width, classes=args.classes,
                            epochs=args.epochs, device=args.device, progress=not args.quiet,
                            cache=False if args.no_cache else None, cache_mb=args.cache_mb,
-                           target=args.target, nproc=args.nproc)
+                           target=args.target, nproc=args.nproc, labels=args.labels,
+                           skip_bad=args.skip_bad, class_names=args.class_names,
+                           workers=args.workers)
     if entry is None:  # a torchrun rank other than 0: rank 0 reports
         return 0
     what = (f"a column (column {entry['column']}, width {entry['width']:g})"
@@ -42,7 +46,18 @@ def _grow(args: argparse.Namespace) -> int:
           f"validation accuracy {entry['val_accuracy']:.4f}")
     if "auto" in entry:
         print(f"auto: chose a {entry['auto']['chose']}: {entry['auto']['reason']}")
+    _print_data_notes(entry.get("data") or {})
     return 0
+
+
+def _print_data_notes(data: dict[str, Any]) -> None:
+    """What loading the data did: conversions, resizing, files left out (--skip-bad)."""
+    for note in data.get("notes", []):
+        print(f"data: {note}")
+    for line in data.get("skipped_files", []):
+        print(f"  skipped {line}")
+    if data.get("skipped", 0) > len(data.get("skipped_files", [])):
+        print(f"  ... and {data['skipped'] - len(data['skipped_files'])} more")
 
 
 def _show(args: argparse.Namespace) -> int:
@@ -55,6 +70,11 @@ def _show(args: argparse.Namespace) -> int:
     p = info["parameters"]
     print(f"workspace {info['workspace']}: spec {info['spec']!r}, input {info['input']}, "
           f"lateral {info['lateral']}")
+    norm = info.get("normalization")
+    if norm is not None:
+        values = ("" if norm["mean"] is None else
+                  f" mean {_numbers(norm['mean'])}, std {_numbers(norm['std'])}")
+        print(f"input normalisation ({norm['from']}):{values}")
     if not info["tasks"]:
         print("no tasks yet; grow one with 'colonnade grow WS --task NAME --train FILE'")
     else:
@@ -65,6 +85,11 @@ def _show(args: argparse.Namespace) -> int:
                      for t in info["tasks"]],
                     ["task", "mode", "column", "classes", "params on path", "closure columns",
                      "val accuracy", "seal"]))
+        named = [t for t in info["tasks"] if t.get("class_names")]
+        if named:
+            print()
+            for t in named:
+                print(f"classes of {t['task']}: {', '.join(t['class_names'])}")
         print()
         print(table([[c["column"], c["task"], f"{c['width']:g}", c["params"]]
                      for c in info["columns"]],
@@ -83,11 +108,19 @@ def _predict(args: argparse.Namespace) -> int:
     from ..app.workspace import predict_file
 
     result = predict_file(args.workspace, args.task, args.data, args.output,
-                          all_tasks=args.all)
+                          all_tasks=args.all, labels=args.labels, skip_bad=args.skip_bad)
+    if result["skipped"]:
+        print(f"skipped {result['skipped']} bad file(s) (--skip-bad)")
     if args.all:
         print(f"wrote logits and predictions of {len(result['tasks'])} tasks "
               f"({', '.join(result['tasks'])}) for {result['samples']} samples to "
-              f"{result['output']} (arrays logits_TASK, pred_TASK)")
+              f"{result['output']}")
+        for name, acc in result["accuracy"].items():
+            if acc is not None:
+                print(f"  {name}: accuracy {acc:.4f}")
+        if any(acc is None for acc in result["accuracy"].values()) and any(
+                acc is not None for acc in result["accuracy"].values()):
+            print("  (no accuracy for tasks whose classes the labels do not fit)")
         return 0
     msg = f"wrote logits and predictions of task {result['task']!r} for " \
           f"{result['samples']} samples to {result['output']}"
@@ -95,6 +128,10 @@ def _predict(args: argparse.Namespace) -> int:
         msg += f"; accuracy {result['accuracy']:.4f}"
     print(msg)
     return 0
+
+
+def _numbers(values: list[float]) -> str:
+    return "[" + ", ".join(f"{v:.4g}" for v in values) + "]"
 
 
 def _print_transfer(rec: dict[str, Any]) -> None:
@@ -122,7 +159,20 @@ def add_parsers(verb: Any) -> None:
     p = verb("grow", _grow, "add a column or a head for a new task and train it")
     p.add_argument("workspace")
     p.add_argument("--task", required=True, help="name of the new task")
-    p.add_argument("--train", required=True, help="training data (.npz or .csv)")
+    p.add_argument("--train", required=True,
+                   help="training data: .npz, .csv, a .npy of samples (with --labels), or a "
+                        "folder with one subfolder per class (images, waveforms, .npy)")
+    p.add_argument("--labels", metavar="LABELS.npy",
+                   help="with a .npy of samples: its labels (integers or class names)")
+    p.add_argument("--skip-bad", action="store_true",
+                   help="leave unreadable or misshapen files of a folder out (listed, and "
+                        "counted in the record) instead of refusing the data")
+    p.add_argument("--class-names", type=name_list, metavar="A,B,C",
+                   help="names of classes 0..C-1 for integer labels (or the order of named "
+                        "classes)")
+    p.add_argument("--workers", type=non_negative_int, default=0,
+                   help="DataLoader worker processes reading streamed batches (default 0: "
+                        "read in this process)")
     p.add_argument("--val", help="validation data; default: x_val/y_val in the file, "
                                  "else a stratified split")
     p.add_argument("--mode", choices=["column", "head", "auto"], default="column",
@@ -156,6 +206,13 @@ def add_parsers(verb: Any) -> None:
     p.add_argument("--task", help="the task (or --all)")
     p.add_argument("--all", action="store_true",
                    help="every task in one pass, each column computed once per batch")
-    p.add_argument("--data", required=True, help=".npz or .csv; labels optional")
-    p.add_argument("-o", "--output", required=True, help="output .npz")
+    p.add_argument("--data", required=True,
+                   help=".npz, .csv, .npy, or a folder (files, or class folders); labels "
+                        "optional: with labels the accuracy is printed")
+    p.add_argument("--labels", metavar="LABELS.npy", help="with a .npy of samples: its labels")
+    p.add_argument("--skip-bad", action="store_true",
+                   help="leave unreadable files of a folder out instead of refusing the data")
+    p.add_argument("-o", "--output", required=True,
+                   help="output .csv (one row per sample: id, predicted class, logits) or "
+                        ".npz (arrays)")
 

@@ -32,11 +32,13 @@ import torch
 from .._version import __version__
 from ..clock import now
 from ..errors import DataError, UsageError
-from ..model.digest import closure_digests, file_digest, record_digest, tensor_digest
+from ..model.digest import closure_digests, record_digest, tensor_digest
 from ..model.guard import sealed_tasks, seals_of
 from ..model.network import ProgressiveNet
-from ..training.data import load_task_data
+from ..training.data import load_for_spec
+from ..training.datasets import Rows
 from ..training.fit import EVAL_BATCH, task_logits
+from ..training.sources import source_digest
 
 __all__ = ["SEALS_FILE", "Probe", "load_probe", "probe_metrics", "environment",
            "reference_logits", "computation_context", "seal_task", "unseal_task",
@@ -52,25 +54,34 @@ _UNSIGNED = ("entry_sha256", "unsealed")
 class Probe:
     """A probe set as read from its file, with the file's SHA-256."""
 
-    x: torch.Tensor
+    x: torch.Tensor | Rows  # Rows: a probe larger than memory, read in batches
     y: torch.Tensor
     sha256: str
     path: str  # as recorded in the seal (relative to the workspace where possible)
+    labels: str | None = None  # a .npy probe's labels file, recorded like ``path``
 
 
 def load_probe(path: str | Path, net: ProgressiveNet, task: str,
-               relative_to: str | Path | None = None) -> Probe:
-    """Read a labelled probe file for ``task``; every sample is kept, in file order."""
+               relative_to: str | Path | None = None, labels: str | Path | None = None,
+               ) -> Probe:
+    """Read a labelled probe for ``task`` (a file, a class folder, or a .npy with its
+    ``labels``); every sample is kept, in file order. Labels by name map onto the
+    task's class names."""
     info = net.task(task)
-    data = load_task_data(path, net.input_shape, classes=info.classes, need_labels=True,
-                          split=False)
-    recorded = str(path)
-    if relative_to is not None:
-        try:
-            recorded = os.path.relpath(os.path.abspath(path), os.path.abspath(relative_to))
-        except ValueError:  # another drive on Windows: keep the path as given
-            pass
-    return Probe(data.x, data.y, file_digest(path), recorded)
+    data = load_for_spec(path, net.spec, classes=info.classes, class_names=info.class_names,
+                         need_labels=True, split=False, labels=labels)
+    return Probe(data.x, data.y, source_digest(path, labels), _recorded(path, relative_to),
+                 None if labels is None else _recorded(labels, relative_to))
+
+
+def _recorded(path: str | Path, relative_to: str | Path | None) -> str:
+    """A path as the seal records it: relative to the workspace where possible."""
+    if relative_to is None:
+        return str(path)
+    try:
+        return os.path.relpath(os.path.abspath(path), os.path.abspath(relative_to))
+    except ValueError:  # another drive on Windows: keep the path as given
+        return str(path)
 
 
 def probe_metrics(logits: torch.Tensor, y: torch.Tensor, classes: int) -> dict[str, Any]:
@@ -164,7 +175,8 @@ def seal_task(net: ProgressiveNet, task: str, probe: Probe,
                     "adapters": list(closure.adapters), "head": closure.head,
                     "tensors": per},
         "probe": {"path": probe.path, "sha256": probe.sha256,
-                  "samples": int(probe.x.shape[0])},
+                  "samples": int(probe.x.shape[0]),
+                  **({"labels": probe.labels} if probe.labels is not None else {})},
         "reference": {"file": SEALS_FILE, "key": key, "sha256": tensor_digest(key, logits),
                       "shape": list(logits.shape),
                       "dtype": str(logits.dtype).removeprefix("torch.")},

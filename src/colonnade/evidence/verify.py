@@ -27,9 +27,10 @@ from typing import Any
 import torch
 
 from ..errors import ColonnadeError
-from ..model.digest import file_digest, raw_bytes, tensor_digest
+from ..model.digest import raw_bytes, tensor_digest
 from ..model.guard import closure_findings, sealed_tasks
 from ..model.network import ProgressiveNet
+from ..training.sources import source_digest
 from .seal import (
     SEALS_FILE,
     Probe,
@@ -240,14 +241,17 @@ def probe_for(folder: Path, net: ProgressiveNet, task: str, entry: Mapping[str, 
                     else os.path.normpath(folder / recorded))
     else:
         return None, f"seal v{version} of task {task!r} names no probe file; pass --probe FILE"
-    if not path.is_file():
+    labels = (entry.get("probe") or {}).get("labels") if override is None else None
+    if labels is not None:
+        labels = Path(labels if os.path.isabs(labels) else os.path.normpath(folder / labels))
+    if not path.exists() or (labels is not None and not labels.is_file()):
         return None, (f"probe file {path} of seal v{version} is missing; restore it, or pass "
                       f"--task {task} --probe FILE")
-    if file_digest(path) != entry["probe"].get("sha256"):
+    if source_digest(path, labels) != entry["probe"].get("sha256"):
         return None, (f"probe file {path} changed since seal v{version}: its SHA-256 differs "
                       f"from the recorded one")
     try:
-        probe = load_probe(path, net, task)
+        probe = load_probe(path, net, task, labels=labels)
     except ColonnadeError as exc:
         return None, f"probe file {path} of seal v{version} cannot be used ({exc})"
     probe.path = str(path)

@@ -28,7 +28,7 @@ class ArchitectureRecord:
     def architecture(self) -> dict[str, Any]:
         """Everything needed to rebuild the modules, as plain data for the manifest."""
         return {
-            "tasks": [asdict(t) for t in self.task_info.values()],
+            "tasks": [_task_record(t) for t in self.task_info.values()],
             "columns": [asdict(c) for c in self.column_info],
             "adapters": [asdict(a) for a in self.adapter_info.values()],
         }
@@ -44,7 +44,7 @@ class ArchitectureRecord:
                                                   float(c["width"])))
             for t in arch["tasks"]:
                 info = TaskInfo(str(t["name"]), int(t["classes"]), int(t["column"]),
-                                str(t["mode"]))
+                                str(t["mode"]), _class_names(t, int(t["classes"])))
                 net.task_info[info.name] = info
                 net.heads[info.name] = nn.Linear(net.columns[info.column].out_features,
                                                  info.classes)
@@ -71,3 +71,21 @@ class ArchitectureRecord:
             classes = self.task_info[info.head].classes
             return self._head_adapter(info.head, classes, info.source, info.kind)[1]
         return self._block_adapter(info.column, info.block, info.source, info.kind)[1]
+
+
+def _task_record(task: TaskInfo) -> dict[str, Any]:
+    """A task as plain data; ``class_names`` only when it has names (older records lack it)."""
+    record = asdict(task)
+    if record["class_names"] is None:
+        del record["class_names"]
+    return record
+
+
+def _class_names(record: dict[str, Any], classes: int) -> list[str] | None:
+    names = record.get("class_names")
+    if names is None:
+        return None
+    if (not isinstance(names, list) or len(names) != classes
+            or not all(isinstance(n, str) for n in names)):
+        raise ValueError(f"task {record.get('name')!r}: class_names must be {classes} strings")
+    return list(names)

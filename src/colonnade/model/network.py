@@ -18,12 +18,13 @@ from typing import Any
 import torch
 import torch.nn as nn
 
-from ..errors import DataError, UsageError, WorkspaceError
+from ..errors import DataError, SealedError, UsageError, WorkspaceError
 from .adapters import LateralAdapter, make_adapter
 from .architecture import ArchitectureRecord
-from .guard import guard, guard_state
+from .guard import guard, guard_state, is_sealed
 from .layers import Shape, check_width
-from .parts import AdapterInfo, Block, Closure, Column, ColumnInfo, TaskInfo
+from .normalization import InputNormalization
+from .parts import MAX_CLASSES, AdapterInfo, Block, Closure, Column, ColumnInfo, TaskInfo
 from .schema import Dense, Spec
 
 __all__ = ["ProgressiveNet", "Column", "Block", "TaskInfo", "ColumnInfo", "AdapterInfo",
@@ -44,6 +45,13 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
         super().__init__()
         self.spec = spec
         self.input_shape: Shape = tuple(spec.input)
+        # The spec's input normalisation runs first for every column; nn.Identity when the
+        # spec has none (then the state dict has no keys for it).
+        norm = spec.normalize
+        self.input_norm: nn.Module = (
+            nn.Identity() if norm is None
+            else InputNormalization(self.input_shape, *(None, None) if norm == "fit"
+                                    else (norm.mean, norm.std)))
         self.columns = nn.ModuleList()
         self.adapters = nn.ModuleDict()
         self.heads = nn.ModuleDict()
@@ -150,6 +158,10 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
 
     # ----------------------------------------------------------------- forward
     def _check_input(self, x: torch.Tensor) -> None:
+        if not isinstance(x, torch.Tensor):
+            raise DataError(f"the network takes a torch.Tensor, got {type(x).__module__}."
+                            f"{type(x).__name__}; convert it first, e.g. "
+                            f"torch.from_numpy(x).float()")
         if tuple(x.shape[1:]) != self.input_shape:
             raise DataError(f"input has sample shape {list(x.shape[1:])}, but the network "
                             f"expects {list(self.input_shape)}")
@@ -164,6 +176,7 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
         listed column must itself be listed or given.
         """
         outs: dict[int, list[torch.Tensor]] = dict(given or {})
+        x = self.input_norm(x)
         for k in sorted(columns):
             if k in outs:
                 continue
@@ -263,6 +276,51 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
             raise UsageError(f"a task named {name!r} exists already; choose another name")
         if not isinstance(classes, int) or classes < 2:
             raise UsageError(f"a task needs at least 2 classes, got {classes}")
+        if classes > MAX_CLASSES:
+            raise UsageError(f"a task may have at most {MAX_CLASSES} classes, got {classes}; "
+                             f"class labels must run 0..C-1")
+
+    def _check_class_names(self, classes: int, names: list[str] | None) -> list[str] | None:
+        if names is None:
+            return None
+        names = [str(n) for n in names]
+        if len(names) != classes or len(set(names)) != len(names) or not all(names):
+            raise UsageError(f"a task of {classes} classes needs {classes} distinct, non-empty "
+                             f"class names, got {len(names)}: {', '.join(names[:8])}")
+        return names
+
+    # ----------------------------------------------------------------- input normalisation
+    @property
+    def normalization(self) -> dict[str, list[float]] | None:
+        """The input normalisation's per-channel mean and std, or None without one."""
+        norm = self.input_norm
+        return norm.values() if isinstance(norm, InputNormalization) else None
+
+    def set_normalization(self, mean: list[float], std: list[float]) -> None:
+        """Fix the input normalisation; allowed only while the network has no task.
+
+        Every task's outputs depend on it, so once the first task exists it is fixed:
+        changing it would move every task (and break every seal).
+        """
+        if not isinstance(self.input_norm, InputNormalization):
+            raise UsageError("the spec has no input normalisation; add input.normalize to "
+                             "the spec to use one")
+        if self.tasks:
+            sealed = [t for t in self.tasks if is_sealed(self, t)]
+            also = f" (sealed: {', '.join(sealed)})" if sealed else ""
+            raise (SealedError if sealed else UsageError)(
+                f"the input normalisation is fixed once the first task exists; changing it "
+                f"would move every task's outputs ({', '.join(self.tasks)}){also}")
+        channels = self.input_norm.channels
+        for name, values in (("mean", mean), ("std", std)):
+            if len(values) not in (1, channels) or not all(
+                    isinstance(v, (int, float)) and v == v and abs(v) != float("inf")
+                    for v in values):
+                raise UsageError(f"normalisation {name} needs 1 or {channels} finite numbers, "
+                                 f"got {list(values)}")
+        if any(v <= 0 for v in std):
+            raise UsageError(f"normalisation std must be positive, got {list(std)}")
+        self.input_norm.set(mean, std)
 
     def _register_adapter(self, info: AdapterInfo, module: LateralAdapter) -> None:
         self.adapters[info.key] = module
@@ -304,9 +362,10 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
                               lat.activation)
         return AdapterInfo(f"h_{task}_from_c{j}", kind, j, head=task), module
 
-    def _add_head(self, name: str, classes: int, column: int, mode: str) -> list[str]:
+    def _add_head(self, name: str, classes: int, column: int, mode: str,
+                  class_names: list[str] | None = None) -> list[str]:
         self.heads[name] = nn.Linear(self.columns[column].out_features, classes)
-        self.task_info[name] = TaskInfo(name, classes, column, mode)
+        self.task_info[name] = TaskInfo(name, classes, column, mode, class_names)
         parts = [f"head:{name}"]
         if self.spec.lateral.kind != "none":
             for j in range(column):
@@ -316,12 +375,14 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
         return parts
 
     def add_column(self, name: str, classes: int, width: float = 1.0, seed: int = 0,
-                   ) -> list[str]:
+                   class_names: list[str] | None = None) -> list[str]:
         """Grow a new column, its adapters from every earlier column, and its head.
 
         Returns the ids of the new parts, which become the only trainable ones.
+        ``class_names`` names classes 0..C-1 (recorded with the task).
         """
         self._check_new_task(name, classes)
+        class_names = self._check_class_names(classes, class_names)
         if not (isinstance(width, (int, float)) and 0 < width <= 16):
             raise UsageError(f"width must be a number in (0, 16], got {width}")
         check_width(self.spec, float(width))
@@ -338,22 +399,23 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
                         info, module = self._block_adapter(k, b, j)
                         self._register_adapter(info, module)
                         parts.append(f"adapter:{info.key}")
-            parts += self._add_head(name, classes, k, "column")
+            parts += self._add_head(name, classes, k, "column", class_names)
         self.to(device)
         self._make_trainable(parts)
         return parts
 
     def add_head(self, name: str, classes: int, on: str | None = None, seed: int = 0,
-                 ) -> list[str]:
+                 class_names: list[str] | None = None) -> list[str]:
         """Grow only a head (and its head adapters) on the column of task ``on``."""
         self._check_new_task(name, classes)
+        class_names = self._check_class_names(classes, class_names)
         if not self.columns:
             raise UsageError("the network has no column yet; grow the first task with a column")
         column = self.task(on).column if on is not None else len(self.columns) - 1
         device = self.device
         with torch.random.fork_rng(devices=[]):
             torch.manual_seed(seed)
-            parts = self._add_head(name, classes, column, "head")
+            parts = self._add_head(name, classes, column, "head", class_names)
         self.to(device)
         self._make_trainable(parts)
         return parts

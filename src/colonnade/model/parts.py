@@ -15,7 +15,12 @@ import torch.nn as nn
 from .layers import BlockPlan, ColumnPlan, build_layer, layer_output_shape, plan_column
 from .schema import Spec
 
-__all__ = ["TaskInfo", "ColumnInfo", "AdapterInfo", "Closure", "Block", "Column"]
+__all__ = ["MAX_CLASSES", "TaskInfo", "ColumnInfo", "AdapterInfo", "Closure", "Block", "Column"]
+
+# A bound on a task's class count, checked before a head is allocated: far above any task
+# colonnade is meant for, so a larger count is nearly always a label mistake (an id used
+# as a label). Our own limit, not a published figure.
+MAX_CLASSES = 65_536
 
 
 @dataclass
@@ -26,6 +31,11 @@ class TaskInfo:
     classes: int
     column: int
     mode: str  # "column": it grew its own column; "head": a head on an existing column
+    class_names: list[str] | None = None  # names of classes 0..C-1, when the data had them
+
+    def class_name(self, index: int) -> str:
+        """The name of class ``index`` (its number when the task has no names)."""
+        return self.class_names[index] if self.class_names else str(index)
 
 
 @dataclass
@@ -71,7 +81,8 @@ class Closure:
 
     def state_prefixes(self) -> tuple[str, ...]:
         """Prefixes of ``state_dict`` keys that belong to this closure."""
-        return (tuple(f"columns.{k}." for k in self.columns)
+        # The input normalisation (when the spec has one) feeds every task.
+        return (("input_norm.",) + tuple(f"columns.{k}." for k in self.columns)
                 + tuple(f"adapters.{a}." for a in self.adapters)
                 + (f"heads.{self.head}.",))
 

@@ -15,6 +15,8 @@ from pydantic_core import PydanticCustomError
 
 __all__ = [
     "Spec",
+    "InputSpec",
+    "NormalizeSpec",
     "LateralSpec",
     "TrainSpec",
     "LayerSpec",
@@ -257,20 +259,66 @@ class TrainSpec(_Strict):
         return self
 
 
+def _finite_float(v: Any) -> float:
+    if not _is_number(v) or v != v or abs(v) == float("inf"):
+        raise _fail("finite_float", "a finite number", v)
+    return float(v)
+
+
+FiniteFloat = Annotated[float, BeforeValidator(_finite_float)]
+
+
+class NormalizeSpec(_Strict):
+    """Per-channel input normalisation ``(x - mean) / std``: one value, or one per channel."""
+
+    mean: tuple[FiniteFloat, ...]
+    std: tuple[PosFloat, ...]
+
+
+class InputSpec(_Strict):
+    """The long form of ``input``: the sample shape, normalisation, waveform sample rate.
+
+    ``normalize`` is checked by the parser (``fit``, or a ``NormalizeSpec``).
+    """
+
+    shape: tuple[PosInt, ...]
+    normalize: Any = None
+    rate: PosInt | None = None
+
+
 class Spec(_Strict):
-    """A validated spec. ``column`` holds typed layer objects in template order."""
+    """A validated spec. ``column`` holds typed layer objects in template order.
+
+    ``input`` is the sample shape; the spec's ``input: {shape, normalize, rate}`` form
+    fills ``normalize`` ("fit" or mean/std per channel) and ``input_rate`` (Hz) too.
+    """
 
     name: str = "network"
     input: tuple[PosInt, ...]
     column: tuple[Any, ...]
     lateral: LateralSpec = LateralSpec()
     train: TrainSpec = TrainSpec()
+    normalize: NormalizeSpec | str | None = None
+    input_rate: PosInt | None = None
+
+    def input_dict(self) -> list[int] | dict[str, Any]:
+        """``input`` as written: the plain shape list, or the long form when it has more."""
+        if self.normalize is None and self.input_rate is None:
+            return list(self.input)
+        out: dict[str, Any] = {"shape": list(self.input)}
+        if self.normalize is not None:
+            out["normalize"] = (self.normalize if isinstance(self.normalize, str) else
+                                {"mean": list(self.normalize.mean),
+                                 "std": list(self.normalize.std)})
+        if self.input_rate is not None:
+            out["rate"] = self.input_rate
+        return out
 
     def to_dict(self) -> dict[str, Any]:
         """The spec in its YAML form, so a manifest stores what a user would write."""
         return {
             "name": self.name,
-            "input": list(self.input),
+            "input": self.input_dict(),
             "column": [layer.model_dump(exclude_none=True) for layer in self.column],
             "lateral": self.lateral.model_dump(),
             "train": {k: (list(v) if isinstance(v, tuple) else v)

@@ -16,7 +16,16 @@ from pydantic import ValidationError
 
 from ..errors import SpecError
 from .layers import template_shapes
-from .schema import LAYER_KINDS, LateralSpec, LayerSpec, Spec, TrainSpec, show_value
+from .schema import (
+    LAYER_KINDS,
+    InputSpec,
+    LateralSpec,
+    LayerSpec,
+    NormalizeSpec,
+    Spec,
+    TrainSpec,
+    show_value,
+)
 from .yamlfile import load_yaml
 
 __all__ = ["load_spec", "parse_spec"]
@@ -78,12 +87,45 @@ def _parse_layer(raw: Any, index: int) -> LayerSpec:
         raise SpecError(_sentence(err, where, list(model.model_fields))) from None
 
 
+# Spec fields written inside ``input: {...}``, never at the top level.
+_INPUT_EXTRAS = ("normalize", "input_rate")
+
+
+def _parse_input(raw: dict[str, Any]) -> dict[str, Any]:
+    """The long form ``input: {shape, normalize, rate}`` as Spec fields."""
+    raw = dict(raw)
+    if isinstance(raw.get("shape"), list):
+        raw["shape"] = tuple(raw["shape"])
+    norm = raw.pop("normalize", None)
+    try:
+        parsed = InputSpec.model_validate(raw)
+    except ValidationError as err:
+        raise SpecError(_sentence(err, "input", list(InputSpec.model_fields))) from None
+    if isinstance(norm, dict):
+        values = {k: tuple(v) if isinstance(v, list) else v for k, v in norm.items()}
+        try:
+            norm = NormalizeSpec.model_validate(values)
+        except ValidationError as err:
+            raise SpecError(_sentence(err, "input.normalize",
+                                      list(NormalizeSpec.model_fields))) from None
+        channels = parsed.shape[0] if parsed.shape else 0
+        for name in ("mean", "std"):
+            if len(getattr(norm, name)) not in (1, channels):
+                raise SpecError(f"input.normalize.{name}: expected 1 or {channels} values (one "
+                                f"per channel, the first axis of {list(parsed.shape)}), got "
+                                f"{len(getattr(norm, name))}")
+    elif norm is not None and norm != "fit":
+        raise SpecError(f"input.normalize: expected fit or a mapping {{mean: [...], std: "
+                        f"[...]}}, got {show_value(norm)}")
+    return {"input": parsed.shape, "normalize": norm, "input_rate": parsed.rate}
+
+
 def parse_spec(raw: Any) -> Spec:
     """Validate a spec given as plain data (what ``yaml.safe_load`` returns)."""
     if not isinstance(raw, dict):
         raise SpecError(f"spec: expected a mapping with input, column, lateral and train, "
                         f"got {show_value(raw)}")
-    known = list(Spec.model_fields)
+    known = [k for k in Spec.model_fields if k not in _INPUT_EXTRAS]
     for key in raw:
         if key not in known:
             raise SpecError(f"{key}: unknown key; allowed top-level keys are {', '.join(known)}")
@@ -94,6 +136,8 @@ def parse_spec(raw: Any) -> Spec:
                         f"got {show_value(raw['column'])}")
     layers = tuple(_parse_layer(layer, i) for i, layer in enumerate(raw["column"]))
     data = dict(raw, column=layers)
+    if isinstance(data.get("input"), dict):
+        data.update(_parse_input(data["input"]))
     if isinstance(data.get("input"), list):
         data["input"] = tuple(data["input"])
     if isinstance(data.get("train"), dict) and isinstance(data["train"].get("betas"), list):

@@ -25,6 +25,7 @@ from ..model.network import ProgressiveNet
 from ..model.schema import TrainSpec
 from .cache import FrozenActivations, FrozenCache, frozen_cache
 from .data import TaskData
+from .datasets import Rows, batch_stream, resident_bytes
 
 __all__ = ["TrainRecord", "fit_task", "evaluate", "task_logits", "make_optimizer",
            "EVAL_BATCH", "Transform", "all_task_logits", "EpochProgress"]
@@ -69,7 +70,7 @@ def make_optimizer(params: list[torch.nn.Parameter], train: TrainSpec) -> torch.
 
 
 @torch.no_grad()
-def task_logits(net: ProgressiveNet, task: str, x: torch.Tensor,
+def task_logits(net: ProgressiveNet, task: str, x: torch.Tensor | Rows,
                 batch_size: int = EVAL_BATCH, cached: FrozenActivations | None = None,
                 ) -> torch.Tensor:
     """Logits of ``task`` on ``x`` in eval mode, in fixed batches, on the net's device.
@@ -92,7 +93,7 @@ def task_logits(net: ProgressiveNet, task: str, x: torch.Tensor,
 
 
 @torch.no_grad()
-def all_task_logits(net: ProgressiveNet, x: torch.Tensor, batch_size: int = EVAL_BATCH,
+def all_task_logits(net: ProgressiveNet, x: torch.Tensor | Rows, batch_size: int = EVAL_BATCH,
                     ) -> dict[str, torch.Tensor]:
     """Every task's logits on ``x`` through ``forward_all``: each column once per batch.
 
@@ -112,7 +113,7 @@ def all_task_logits(net: ProgressiveNet, x: torch.Tensor, batch_size: int = EVAL
             for t, chunks in parts.items()}
 
 
-def evaluate(net: ProgressiveNet, task: str, x: torch.Tensor, y: torch.Tensor,
+def evaluate(net: ProgressiveNet, task: str, x: torch.Tensor | Rows, y: torch.Tensor,
              batch_size: int = EVAL_BATCH, cached: FrozenActivations | None = None,
              ) -> tuple[float, float]:
     """Accuracy and mean cross-entropy of ``task`` on labelled data."""
@@ -140,6 +141,7 @@ def fit_task(net: ProgressiveNet, task: str, data: TaskData, train: TrainSpec,
              epochs: int | None = None, seed: int | None = None, progress: bool = True,
              transform: Transform | None = None, cache: bool | None = None,
              cache_mb: float | None = None, ddp: Any = None, label: str | None = None,
+             workers: int = 0,
              ) -> TrainRecord:
     """Train the net's trainable parts on ``task`` with early stopping on validation.
 
@@ -151,6 +153,8 @@ def fit_task(net: ProgressiveNet, task: str, data: TaskData, train: TrainSpec,
     rank's shard, the trainable parts run wrapped in DistributedDataParallel, and norm
     statistics are synchronised before each validation. ``progress`` draws a bar on a
     terminal and prints one line per epoch otherwise; ``label`` names the run in it.
+    ``data`` may be streamed (``Rows``, datasets.py): each batch is then read from disk;
+    ``workers`` > 0 reads the next batches in that many DataLoader worker processes.
     """
     params = net.trainable_parameters()
     if ddp is not None:
@@ -180,8 +184,9 @@ def fit_task(net: ProgressiveNet, task: str, data: TaskData, train: TrainSpec,
                 net.train()
                 total, count = 0.0, 0
                 epoch_start = time.perf_counter()
-                for idx in _batches(data.n_train, train.batch_size, gen):
-                    xb, yb = data.x[idx].to(device), data.y[idx].to(device)
+                batches = _batches(data.n_train, train.batch_size, gen)
+                for idx, xb in batch_stream(data.x, batches, workers):
+                    xb, yb = xb.to(device), data.y[idx].to(device)
                     if transform is not None:
                         xb = transform(xb, epoch)
                     given = frozen.train_rows(idx)
@@ -256,10 +261,16 @@ class EpochProgress:
 def _frozen_cache(net: ProgressiveNet, task: str, data: TaskData, train: TrainSpec,
                   transform: Transform | None, cache: bool | None, cache_mb: float | None,
                   ) -> FrozenCache:
-    """The frozen columns' outputs on this run's rows, reused every epoch (cache.py)."""
+    """The frozen columns' outputs on this run's rows, reused every epoch (cache.py).
+
+    ``cache_mb`` bounds the data held in memory and the cache together: the cache keeps
+    in memory only what the in-memory samples leave of it, and spills the rest to disk.
+    """
     built = time.perf_counter()
+    budget = train.cache_mb if cache_mb is None else cache_mb
+    held = resident_bytes(data.x, data.x_val) / (1 << 20)
     frozen = frozen_cache(net, task, data.x, data.x_val, train.batch_size, EVAL_BATCH,
-                          train.cache_mb if cache_mb is None else cache_mb,
+                          max(budget - held, 0.0),
                           enabled=train.cache if cache is None else cache,
                           transformed=transform is not None)
     if frozen.train is not None or frozen.val is not None:

@@ -16,8 +16,9 @@ from ..model.device import resolve_device
 from ..model.network import ProgressiveNet
 from . import validation as transfer
 from .checks import check_training_data
-from .data import TaskData
+from .data import TaskData, task_data_from
 from .fit import Transform, evaluate, fit_task
+from .input_stats import fit_normalization
 
 __all__ = ["grow"]
 
@@ -27,13 +28,18 @@ def _count(net: ProgressiveNet, parts: list[str]) -> int:
     return sum(p.numel() for part in parts for p in modules[part].parameters())
 
 
-def grow(net: ProgressiveNet, task: str, data: TaskData, mode: str = "column",
+def grow(net: ProgressiveNet, task: str, data: Any, mode: str = "column",
          on: str | None = None, width: float = 1.0, epochs: int | None = None,
          device: str | None = None, progress: bool = True, transform: Transform | None = None,
          cache: bool | None = None, cache_mb: float | None = None,
          target: float | None = None, ddp: Any = None, classes_given: bool = False,
-         ) -> dict[str, Any]:
+         workers: int = 0) -> dict[str, Any]:
     """Grow ``task`` on ``net`` and train it on ``data``; returns the history entry.
+
+    ``data`` is ``TaskData`` (``load_task_data``), ``(x, y)`` arrays, a torch ``Dataset``
+    of ``(x, y)`` pairs or a ``DataLoader`` (``task_data_from``: validation is split off
+    by the spec's ``val_fraction`` and seed). ``workers`` > 0 reads streamed batches in
+    DataLoader worker processes.
 
     The training data is checked first (checks.py): refused when a class has no
     training rows (unless ``classes_given``: the class count was asked for), warned
@@ -47,16 +53,18 @@ def grow(net: ProgressiveNet, task: str, data: TaskData, mode: str = "column",
     ``cache``, ``cache_mb`` and ``ddp`` (data-parallel training, distributed.py) go to
     ``fit_task``.
     """
+    data = task_data_from(data, net.input_shape, val_fraction=net.spec.train.val_fraction,
+                          seed=net.spec.train.seed)
     # Data-parallel ranks see one shard each; distributed.run_rank checks the whole data.
     found = check_training_data(data.y, data.y_val, data.classes, data.source,
                                 classes_given=classes_given) if ddp is None else None
     if mode == "auto":
         entry = _grow_auto(net, task, data, target, on=on, width=width, epochs=epochs,
                            device=device, progress=progress, transform=transform, cache=cache,
-                           cache_mb=cache_mb, ddp=ddp)
+                           cache_mb=cache_mb, ddp=ddp, workers=workers)
     else:
         entry = _grow_one(net, task, data, mode, on, width, epochs, device, progress,
-                          transform, cache, cache_mb, target, ddp)
+                          transform, cache, cache_mb, target, ddp, workers=workers)
     if found is not None and found.warnings:
         entry["data_warnings"] = list(found.warnings)
     return entry
@@ -65,7 +73,8 @@ def grow(net: ProgressiveNet, task: str, data: TaskData, mode: str = "column",
 def _grow_one(net: ProgressiveNet, task: str, data: TaskData, mode: str, on: str | None,
               width: float, epochs: int | None, device: str | None, progress: bool,
               transform: Transform | None, cache: bool | None, cache_mb: float | None,
-              target: float | None, ddp: Any, label: str | None = None) -> dict[str, Any]:
+              target: float | None, ddp: Any, label: str | None = None, workers: int = 0,
+              ) -> dict[str, Any]:
     """One growth step of a fixed mode (``grow`` without the checks and auto mode)."""
     if target is not None:
         raise UsageError("--target applies to --mode auto only")
@@ -78,16 +87,18 @@ def _grow_one(net: ProgressiveNet, task: str, data: TaskData, mode: str, on: str
     dev = resolve_device(device)
     seed = net.spec.train.seed + len(net.tasks)
     net.to(dev)
+    fitted = _fit_normalization(net, data)
     if mode == "column":
-        parts = net.add_column(task, data.classes, width=width, seed=seed)
+        parts = net.add_column(task, data.classes, width=width, seed=seed,
+                               class_names=data.class_names)
     else:
-        parts = net.add_head(task, data.classes, on=on, seed=seed)
+        parts = net.add_head(task, data.classes, on=on, seed=seed, class_names=data.class_names)
     try:
         # R[i-1][i] and the random-network accuracy b[i], before training (transfer.py).
         before = transfer.before_training(net, task, parts, data, seed)
         record = fit_task(net, task, data, net.spec.train, epochs=epochs, seed=seed,
                           progress=progress, transform=transform, cache=cache,
-                          cache_mb=cache_mb, ddp=ddp, label=label)
+                          cache_mb=cache_mb, ddp=ddp, label=label, workers=workers)
     except BaseException:
         net.remove_task(task)
         raise
@@ -106,15 +117,40 @@ def _grow_one(net: ProgressiveNet, task: str, data: TaskData, mode: str, on: str
         "val_accuracy": acc,
         "device": str(dev),
     }
+    if fitted is not None:
+        entry["input_normalization"] = fitted
     transfer.after_training(net, task, data, entry, before)  # row i of R; keeps x_val, y_val
     net.meta["history"].append(entry)
     net.meta["records"][task] = {
         "train": record.to_dict(),
-        "data": {"source": data.source, "n_train": data.n_train, "n_val": data.n_val},
+        "data": _data_record(data),
         "val_accuracy": acc,
         "val_loss": loss,
     }
     return entry
+
+
+def _fit_normalization(net: ProgressiveNet, data: TaskData) -> dict[str, Any] | None:
+    """``normalize: fit``: per-channel mean and std of the first task's training data."""
+    if net.spec.normalize != "fit" or net.tasks:
+        return None
+    mean, std, notes = fit_normalization(data.x)
+    net.set_normalization(mean, std)
+    return {"fitted_on": "training data", "mean": mean, "std": std, "notes": notes}
+
+
+def _data_record(data: TaskData) -> dict[str, Any]:
+    """Where the task's data came from and what loading it did, for the manifest."""
+    record: dict[str, Any] = {"source": data.source, "n_train": data.n_train,
+                              "n_val": data.n_val}
+    if data.streamed:
+        record["streamed"] = True
+    if data.notes:
+        record["notes"] = list(data.notes)
+    if data.skipped:
+        record["skipped"] = len(data.skipped)
+        record["skipped_files"] = list(data.skipped[:20])
+    return record
 
 
 def _grow_auto(net: ProgressiveNet, task: str, data: TaskData, target: float | None,
@@ -135,7 +171,7 @@ def _grow_auto(net: ProgressiveNet, task: str, data: TaskData, target: float | N
                          "data has no validation samples; pass --val FILE")
     kw = dict(epochs=kw.get("epochs"), device=kw.get("device"), progress=kw.get("progress", True),
               transform=kw.get("transform"), cache=kw.get("cache"), cache_mb=kw.get("cache_mb"),
-              target=None, ddp=kw.get("ddp"))
+              target=None, ddp=kw.get("ddp"), workers=kw.get("workers", 0))
     if not net.columns:
         entry = _grow_one(net, task, data, "column", None, width, label="growing a column",
                           **kw)

@@ -13,10 +13,12 @@ import copy
 from collections.abc import Iterable
 from typing import Any
 
+import numpy as np
 import torch
 
 from ..model.network import ProgressiveNet
-from .data import TaskData
+from .data import TaskData, stratified_split
+from .datasets import Rows, materialize, subset
 from .fit import evaluate
 
 __all__ = ["VAL_FILE", "REMEASURED", "store_validation", "validation", "accuracies",
@@ -27,12 +29,28 @@ VAL_FILE = "validation.safetensors"
 # the task's accuracy on its stored validation data before and after the change. The
 # record (evidence.transfer) reads it back.
 REMEASURED = "task_remeasured"
+# The most validation data kept in the workspace per task. Beyond it a stratified,
+# seeded sample of that size is kept, so a streamed data set does not copy gigabytes
+# into the workspace (and into memory at every load); the record says so.
+VAL_KEEP_BYTES = 32 << 20
 
 
-def store_validation(net: ProgressiveNet, task: str, x: torch.Tensor, y: torch.Tensor) -> None:
+def store_validation(net: ProgressiveNet, task: str, x: torch.Tensor | Rows, y: torch.Tensor,
+                     seed: int = 0) -> str | None:
+    """Keep a task's validation data in the workspace; returns a note if it was sampled."""
+    n = int(x.shape[0])
+    row_bytes = 4 * int(np.prod(tuple(x.shape[1:]), dtype=np.int64))
+    note = None
+    if n and n * row_bytes > VAL_KEEP_BYTES:
+        keep = max(VAL_KEEP_BYTES // max(row_bytes, 1), 1)
+        _, rows = stratified_split(y.numpy(), keep / n, seed)
+        x, y = subset(x, rows), y[torch.from_numpy(rows)]
+        note = (f"validation data kept in the workspace: a stratified sample of "
+                f"{len(rows)} of {n} rows (at most {VAL_KEEP_BYTES >> 20} MiB)")
     files = net.attachments.setdefault(VAL_FILE, {})
-    files[f"{task}/x"] = x.detach().cpu().contiguous()
+    files[f"{task}/x"] = materialize(x).detach().cpu().contiguous()
     files[f"{task}/y"] = y.detach().cpu().contiguous()
+    return note
 
 
 def validation(net: ProgressiveNet, task: str) -> tuple[torch.Tensor, torch.Tensor] | None:
@@ -90,7 +108,9 @@ def before_training(net: ProgressiveNet, task: str, parts: Iterable[str], data: 
 def after_training(net: ProgressiveNet, task: str, data: TaskData, entry: dict[str, Any],
                    before: dict[str, float | None]) -> None:
     """Keep the task's validation data and add row i of R to the growth entry."""
-    store_validation(net, task, data.x_val, data.y_val)
+    note = store_validation(net, task, data.x_val, data.y_val, net.spec.train.seed)
+    if note is not None:
+        entry["validation_kept"] = note
     entry["val_accuracies"] = accuracies(net)
     entry.update(before)
 
