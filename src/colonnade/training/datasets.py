@@ -129,7 +129,7 @@ class Rows:
     def subset(self, index: Any) -> Rows:
         return SubsetRows(self, as_index(index, self.n))
 
-    def materialize(self, chunk: int = 1024) -> torch.Tensor:
+    def materialize(self, chunk: int = 256) -> torch.Tensor:
         """Every row as one tensor, read in chunks (only for data known to fit)."""
         out = torch.empty((self.n, *self.sample_shape), dtype=torch.float32)
         for i in range(0, self.n, chunk):
@@ -228,7 +228,10 @@ def batch_stream(x: torch.Tensor | Rows, batches: list[torch.Tensor], workers: i
         for idx in batches:
             yield idx, x[idx]
         return
+    # The loader draws its workers' base seed from ``generator``: without one it would
+    # draw from torch's global generator and move the dropout masks of training.
     loader = DataLoader(RowsDataset(x), batch_sampler=[b.tolist() for b in batches],
                         num_workers=workers, collate_fn=_whole_batch,
-                        persistent_workers=False, prefetch_factor=2)
+                        persistent_workers=False, prefetch_factor=2,
+                        generator=torch.Generator().manual_seed(0))
     yield from zip(batches, loader, strict=True)

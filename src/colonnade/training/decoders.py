@@ -89,8 +89,8 @@ class Decoder:
         from PIL import Image, UnidentifiedImageError
 
         if len(self.shape) != 3 or self.shape[0] not in _IMAGE_MODES:
-            raise DataError(f"{path}: images need a spec input [channels, height, width] with "
-                            f"1, 3 or 4 channels, but it is {list(self.shape)}")
+            raise BadFile(f"it is an image, but the spec's input {list(self.shape)} is not "
+                          f"[channels, height, width] with 1, 3 or 4 channels")
         c, h, w = self.shape
         try:
             with Image.open(path) as img:
@@ -112,8 +112,8 @@ class Decoder:
         import soundfile
 
         if len(self.shape) not in (1, 2):
-            raise DataError(f"{path}: waveforms need a spec input [channels, length] or "
-                            f"[length], but it is {list(self.shape)}")
+            raise BadFile(f"it is a waveform, but the spec's input {list(self.shape)} is not "
+                          f"[channels, length] or [length]")
         channels, length = (1, self.shape[0]) if len(self.shape) == 1 else self.shape
         try:
             frames, rate = soundfile.read(str(path), dtype="float32", always_2d=True)

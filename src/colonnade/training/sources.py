@@ -137,7 +137,9 @@ class NpyRows(Rows):
     while the operating system's page cache still makes repeated epochs fast.
     """
 
-    def __init__(self, path: Path, sample_shape: tuple[int, ...] | None = None) -> None:
+    def __init__(self, path: Path) -> None:
+        self._fd: int | None = None
+        self._pid = -1
         try:
             with open(path, "rb") as f:
                 major, _ = np.lib.format.read_magic(f)
@@ -163,8 +165,6 @@ class NpyRows(Rows):
         if os.path.getsize(path) < expected:
             raise DataError(f"{path}: the file is shorter than its header says ({shape[0]} "
                             f"rows of {list(shape[1:])}); it is truncated, write it again")
-        self._fd: int | None = None
-        self._pid = -1
         if dtype != np.float32:
             self.notes.append(f"{path.name}: {dtype} values converted to float32 per batch")
 
