@@ -191,7 +191,13 @@ def _bad_cases(root):
     ]
 
 
-def test_every_bad_file_is_named_and_the_workspace_stays_byte_identical(image_ws, capsys):
+def test_every_bad_file_is_named_and_the_workspace_stays_byte_identical(image_ws, capsys,
+                                                                         monkeypatch):
+    from PIL import ImageFile
+
+    # Another library may switch Pillow to accept truncated images process-wide (a PDF
+    # engine does): a truncated file must still be refused.
+    monkeypatch.setattr(ImageFile, "LOAD_TRUNCATED_IMAGES", True)
     ws = image_ws / "ws"
     before = snapshot(ws)
     for rel, content, words in _bad_cases(image_ws / "digits"):

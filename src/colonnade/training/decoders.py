@@ -86,12 +86,15 @@ class Decoder:
 
     # ----------------------------------------------------------------- images
     def image(self, path: Path) -> np.ndarray:
-        from PIL import Image, UnidentifiedImageError
+        from PIL import Image, ImageFile, UnidentifiedImageError
 
         if len(self.shape) != 3 or self.shape[0] not in _IMAGE_MODES:
             raise BadFile(f"it is an image, but the spec's input {list(self.shape)} is not "
                           f"[channels, height, width] with 1, 3 or 4 channels")
         c, h, w = self.shape
+        # A truncated file is bad data, even if another library in this process told
+        # Pillow to accept truncated images (a process-wide switch), so it is off here.
+        lenient, ImageFile.LOAD_TRUNCATED_IMAGES = ImageFile.LOAD_TRUNCATED_IMAGES, False
         try:
             with Image.open(path) as img:
                 img.load()
@@ -104,6 +107,8 @@ class Decoder:
         except (UnidentifiedImageError, OSError, ValueError, Image.DecompressionBombError,
                 SyntaxError) as exc:
             raise BadFile(f"cannot read it as an image ({_reason(exc)})") from None
+        finally:
+            ImageFile.LOAD_TRUNCATED_IMAGES = lenient
         scale = np.float32(65535.0 if sixteen else 255.0)
         return (values / scale).reshape(h, w, c).transpose(2, 0, 1)  # (C, H, W)
 
