@@ -113,12 +113,11 @@ def snapshot(folder) -> dict[str, bytes]:
             for p in sorted(Path(folder).rglob("*")) if p.is_file()}
 
 
-def called_tensors(net: torch.nn.Module, run) -> set[str]:
-    """State keys of every module torch calls while ``run()`` runs, found by forward hooks.
+def called_modules(net: torch.nn.Module, run) -> set[str]:
+    """Names of the modules torch calls while ``run()`` runs, found by forward hooks.
 
     Source: torch's own forward hooks on the modules actually called, not the network's
-    bookkeeping. A parameter or buffer counts when its module or a module above it (below
-    the network itself) was called; adapters run their inner maps through ``.forward``.
+    bookkeeping.
     """
     called: set[str] = set()
     handles = [m.register_forward_hook(lambda mod, i, o, name=name: called.add(name))
@@ -129,6 +128,16 @@ def called_tensors(net: torch.nn.Module, run) -> set[str]:
     finally:
         for h in handles:
             h.remove()
+    return called
+
+
+def called_tensors(net: torch.nn.Module, run) -> set[str]:
+    """State keys of every module torch calls while ``run()`` runs (forward hooks).
+
+    A parameter or buffer counts when its module or a module above it (below the network
+    itself) was called; adapters run their inner maps through ``.forward``.
+    """
+    called = called_modules(net, run)
     keys = set()
     for key in net.state_dict():
         parts = key.split(".")[:-1]

@@ -15,7 +15,7 @@ from pathlib import Path
 import pytest
 import torch
 import torch.nn as nn
-from conftest import flop_macs  # FlopCounterMode's FLOPs / 2 (torch.utils.flop_counter)
+from conftest import called_tensors, flop_macs  # forward hooks; FlopCounterMode FLOPs / 2
 
 from colonnade.costing import costs
 from colonnade.model.adapters import make_adapter
@@ -138,27 +138,30 @@ def test_task_macs_match_flop_counter(grown):
     assert total.macs == flop_macs(grown.forward_all, x)
 
 
-def _closure_params(net, task):
-    prefixes = net.closure(task).state_prefixes()
-    return [p for n, p in net.named_parameters() if n.startswith(prefixes)]
+def _called(net, task):
+    """State keys the task's forward really reads: forward hooks on the called modules."""
+    x = torch.zeros(1, *net.input_shape)
+    return called_tensors(net, lambda: net(x, task=task))
+
+
+def _numel(net, keys, prefix=""):
+    params = dict(net.named_parameters())
+    return sum(params[k].numel() for k in keys if k in params and k.startswith(prefix))
 
 
 def test_params_match_numel(grown):
     ledger = costs.ledger_of(grown)
+    buffers = dict(grown.named_buffers())
     for t in ledger.tasks:
-        params = _closure_params(grown, t.task)
-        # Source: numel() of the closure's parameters, by state_dict prefix.
-        assert t.path.params.total == sum(p.numel() for p in params)
-        closure = grown.closure(t.task)
-        assert t.path.params.column == sum(p.numel() for k in closure.columns
-                                           for p in grown.columns[k].parameters())
-        assert t.path.params.adapters == sum(p.numel() for a in closure.adapters
-                                             for p in grown.adapters[a].parameters())
+        used = _called(grown, t.task)
+        # Source: numel() of the parameters of the modules the forward calls.
+        assert t.path.params.total == _numel(grown, used)
+        assert t.path.params.column == _numel(grown, used, "columns.")
+        assert t.path.params.adapters == _numel(grown, used, "adapters.")
         assert t.path.params.head == grown.heads[t.task].weight.numel() + grown.heads[
             t.task].bias.numel()
         assert t.path.params.frozen == t.path.params.total and t.path.params.trainable == 0
-        bufs = [b for n, b in grown.named_buffers() if n.startswith(closure.state_prefixes())]
-        assert t.path.params.buffers == sum(b.numel() for b in bufs)
+        assert t.path.params.buffers == sum(buffers[k].numel() for k in used if k in buffers)
     # Every parameter belongs to exactly one task: the sum of params_added is the network.
     assert sum(t.added.total for t in ledger.tasks) == sum(p.numel() for p in grown.parameters())
     assert ledger.total.params.total == sum(p.numel() for p in grown.parameters())
@@ -304,9 +307,9 @@ def test_joint_adapters_are_costed_from_the_live_modules(name):
     x = torch.randn(1, *net.input_shape)
     ledger = costs.ledger_of(net)
     for t in ledger.tasks:
-        # Sources: FlopCounterMode over the real forward; numel() of the closure.
+        # Sources: FlopCounterMode over the real forward; numel() of the called modules.
         assert t.path.macs == flop_macs(lambda task=t.task: net(x, task=task))
-        assert t.path.params.total == sum(p.numel() for p in _closure_params(net, t.task))
+        assert t.path.params.total == _numel(net, _called(net, t.task))
     assert sum(t.added.total for t in ledger.tasks) == sum(p.numel() for p in net.parameters())
     assert ledger.total.macs == flop_macs(net.forward_all, x)
     assert costs.adapter_macs(net.adapters[key]) == flop_macs(

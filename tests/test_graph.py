@@ -2,7 +2,7 @@
 
 Outside references: ``named_modules()`` and ``numel()`` of the torch modules,
 ``torch.utils.flop_counter.FlopCounterMode`` for MACs (counted FLOPs / 2),
-``ProgressiveNet.closure`` for what a task runs, graphviz's own ``dot`` program (it must
+forward hooks on the modules torch calls for what a task runs, graphviz's own ``dot`` program (it must
 accept every DOT source without a single warning), and ``xml.etree`` for the SVG.
 Networks are grown with ``add_column`` / ``add_head`` and frozen, without training, so
 the whole file runs in seconds.
@@ -18,7 +18,7 @@ import xml.etree.ElementTree as ET
 import networkx as nx
 import pytest
 import torch
-from conftest import flop_macs  # FlopCounterMode's FLOPs / 2 (torch.utils.flop_counter)
+from conftest import called_modules, flop_macs  # forward hooks; FlopCounterMode FLOPs / 2
 
 import colonnade
 from colonnade.app.views import render
@@ -181,6 +181,12 @@ def test_macs_match_torch_flop_counter(name):
             assert path == flop_macs(lambda t=task: net(x, task=t))
 
 
+
+def _called_layers(net, run) -> set[str]:
+    """Column layers (stem, weighted, post) that torch calls while ``run()`` runs."""
+    pattern = re.compile(r"columns\.\d+\.(stem\.\d+|blocks\.\d+\.(weighted|post\.\d+))")
+    return {m for m in called_modules(net, run) if pattern.fullmatch(m)}
+
 @pytest.mark.parametrize("name", ["dense", "conv1d"])
 def test_graph_reaches_exactly_the_closure(name):
     net = grown(SPECS[name], 4, head_task=True)
@@ -189,12 +195,13 @@ def test_graph_reaches_exactly_the_closure(name):
     G = build_graph(net)
     live = nx.DiGraph((u, v) for u, v, d in G.edges(data=True)
                       if d["role"] == "forward" or d["state"] == "live")
+    x = torch.zeros(2, *net.input_shape)
     for task in net.tasks:
         ancestors = nx.ancestors(live, f"head_{task}")
-        columns = {G.nodes[a]["column"] for a in ancestors if G.nodes[a]["kind"] == "layer"}
-        # Source: the network's own closure, which forward() runs.
-        assert columns == set(net.closure(task).columns)
-    assert 1 not in net.closure("t3").columns
+        layers = {G.nodes[a]["module"] for a in ancestors if G.nodes[a]["kind"] == "layer"}
+        # Source: forward hooks on the layers torch really calls for the task.
+        assert layers == _called_layers(net, lambda t=task: net(x, task=t))
+    assert not any(G.nodes[a].get("column") == 1 for a in nx.ancestors(live, "head_t3"))
 
 
 def test_pruned_and_merged_states_and_joint_adapters():
@@ -328,15 +335,17 @@ def test_focus_highlights_exactly_the_closure(compact):
     for key in cut_off_column_1(net):
         prune(net, key)
     G = build_graph(net)
+    x = torch.zeros(2, *net.input_shape)
     for task in net.tasks:
-        c = net.closure(task)  # source: what forward(x, task) runs
+        c = net.closure(task)
+        runs = _called_layers(net, lambda t=task: net(x, task=t))  # source: forward hooks
         groups = svg_groups(svg_of(net, task=task, compact=compact))
         focus = {i for i, cl in groups.items() if "focus" in cl}
         faded = {i for i, cl in groups.items() if "faded" in cl}
         assert not focus & faded
         if not compact:
             want = ({n for n, d in G.nodes(data=True)
-                     if d["kind"] == "layer" and d["column"] in c.columns}
+                     if d["kind"] == "layer" and d["module"] in runs}
                     | {"input", f"head_{task}"})
             assert {i for i in focus if groups[i] & {"layer", "head", "input"}} == want
             assert {i.removeprefix("lateral:") for i in focus if "lateral" in groups[i]} == set(

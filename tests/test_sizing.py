@@ -9,7 +9,10 @@ from pathlib import Path
 
 import pytest
 import torch
-from conftest import flop_macs  # FlopCounterMode's FLOPs / 2 (torch.utils.flop_counter)
+from conftest import (  # FlopCounterMode's FLOPs / 2 (torch.utils.flop_counter)
+    called_params,
+    flop_macs,
+)
 
 from colonnade.cli import main
 from colonnade.costing import costs, sizing, verdicts
@@ -45,8 +48,9 @@ def _numel(params) -> int:
 
 
 def _path_numel(net, task) -> int:
-    prefixes = net.closure(task).state_prefixes()
-    return _numel(p for n, p in net.named_parameters() if n.startswith(prefixes))
+    """numel() of the parameters of the modules the task's forward calls (forward hooks)."""
+    x = torch.zeros(1, *net.input_shape)
+    return called_params(net, lambda: net(x, task=task))
 
 
 def _float_buffers(net) -> int:

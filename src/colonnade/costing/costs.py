@@ -33,6 +33,7 @@ from .module_costs import (
     VIEWS,
     adapter_macs,
     adapter_steps,
+    column_prefix,
     layer_macs,
     module_macs,
     module_output_shape,
@@ -41,7 +42,7 @@ from .module_costs import (
 __all__ = ["DTYPE_BYTES", "MAC_CONVENTION", "ACTIVATION_RULE", "ParamCount", "PathCost",
            "TaskCost", "NetworkCost", "module_output_shape", "layer_macs", "adapter_macs",
            "module_macs", "weight_bytes", "count_params", "peak_activation", "task_cost",
-           "network_cost", "ledger_of", "part_of_task"]
+           "network_cost", "ledger_of", "part_of_task", "column_prefix"]
 
 # Element sizes in bytes: IEEE 754 binary32 and binary16; bfloat16 keeps the upper 16
 # bits of a binary32; int8 is one byte.
@@ -171,8 +172,9 @@ class _Trace:
         return best, where
 
 
-def _trace(net: ProgressiveNet, columns: Iterable[int], heads: Iterable[str]) -> _Trace:
-    """The op list of ``run_columns`` over ``columns`` then ``head_logits`` per head."""
+def _trace(net: ProgressiveNet, columns: Iterable[int], heads: Iterable[str],
+           depths: dict[int, int] | None = None) -> _Trace:
+    """The op list of ``run_columns`` over ``columns`` (each to its depth) then the heads."""
     tr = _Trace()
     shape0 = tuple(net.input_shape)
     x = tr.tensor(math.prod(shape0))
@@ -181,7 +183,10 @@ def _trace(net: ProgressiveNet, columns: Iterable[int], heads: Iterable[str]) ->
         col = net.columns[k]
         h, shape = tr.layer(f"column {k} stem", col.stem, x, shape0)
         hs: list[tuple[int, Shape]] = []
-        for b, block in enumerate(col.blocks):
+        blocks = list(col.blocks)
+        if depths is not None and k in depths:
+            blocks = blocks[:depths[k]]
+        for b, block in enumerate(blocks):
             z, zshape = tr.layer(f"column {k} block {b} weighted", block.weighted, h, shape)
             for key, _ in net.adapters_into_block(k, b):
                 a = _trace_adapter(tr, net, key, [outs[j][b - 1][0] for j in
@@ -217,7 +222,7 @@ def _trace_adapter(tr: _Trace, net: ProgressiveNet, key: str, sources: list[int]
 
 
 def peak_activation(net: ProgressiveNet, columns: Iterable[int], heads: Iterable[str],
-                    ) -> tuple[int, str]:
+                    depths: dict[int, int] | None = None) -> tuple[int, str]:
     """Peak activation elements at batch 1 and the op where it is reached.
 
     The rule, in full: walk the forward pass in colonnade's execution order (columns in
@@ -226,7 +231,8 @@ def peak_activation(net: ProgressiveNet, columns: Iterable[int], heads: Iterable
     reads several (a joint adapter), its scale, maps and activation -- and the sum into
     the block, then the block's other layers; then each head, its head adapters
     and their sums). Every step writes a new tensor, except flatten, dropout and identity,
-    which are views. A tensor is alive from the step that writes it to the last step that
+    which are views. ``depths`` (a closure's) limits a column to its leading blocks, as
+    the forward pass does. A tensor is alive from the step that writes it to the last step that
     reads it; the input is alive from the start; returned logits stay alive to the end.
     At each step, the tensors alive while it runs are its inputs, its output and every
     tensor still to be read later; the peak is the largest such total. Multiply by the
@@ -234,7 +240,7 @@ def peak_activation(net: ProgressiveNet, columns: Iterable[int], heads: Iterable
     than this (it returns them in a dict), so PyTorch's real footprint is higher; the
     figure is what a runtime that frees tensors after their last use needs.
     """
-    return _trace(net, columns, heads).peak()
+    return _trace(net, columns, heads, depths).peak()
 
 
 # ----------------------------------------------------------------------------- task costs
@@ -278,24 +284,29 @@ class NetworkCost:
 
 
 def _parts(net: ProgressiveNet, columns: Iterable[int], adapters: Iterable[str],
-           heads: Iterable[str]) -> Iterator[tuple[str, nn.Module]]:
+           heads: Iterable[str], depths: dict[int, int] | None = None,
+           ) -> Iterator[tuple[str, nn.Module, int]]:
+    """(part id, module to count, MACs) of every part on a path; columns to their depth."""
+    shape = tuple(net.input_shape)
     for k in columns:
-        yield f"column:{k}", net.columns[k]
+        depth = None if depths is None else depths.get(k)
+        col = net.columns[k]
+        yield f"column:{k}", column_prefix(col, depth), module_macs(col, shape, depth)
     for key in adapters:
-        yield f"adapter:{key}", net.adapters[key]
+        yield f"adapter:{key}", net.adapters[key], module_macs(net.adapters[key], ())
     for name in heads:
-        yield f"head:{name}", net.heads[name]
+        head = net.heads[name]
+        yield f"head:{name}", head, module_macs(head, (head.in_features,))
 
 
 def _path(net: ProgressiveNet, columns: list[int], adapters: list[str], heads: list[str],
-          ) -> PathCost:
+          depths: dict[int, int] | None = None) -> PathCost:
     params, by_part = ParamCount(), {"column": 0, "adapters": 0, "head": 0}
-    for part, module in _parts(net, columns, adapters, heads):
+    for part, module, macs in _parts(net, columns, adapters, heads, depths):
         kind = _kind(part)
         params = params + count_params(module, kind)
-        shape = (module.in_features,) if kind == "head" else tuple(net.input_shape)
-        by_part[kind] += module_macs(module, shape)
-    elements, where = peak_activation(net, columns, heads)
+        by_part[kind] += macs
+    elements, where = peak_activation(net, columns, heads, depths)
     return PathCost(params, sum(by_part.values()), by_part, elements, where)
 
 
@@ -307,7 +318,7 @@ def task_cost(net: ProgressiveNet, task: str) -> TaskCost:
     for part, module in net.part_modules():
         if part_of_task(net, part) == task:
             added = added + count_params(module, _kind(part))
-    path = _path(net, list(closure.columns), list(closure.adapters), [task])
+    path = _path(net, list(closure.columns), list(closure.adapters), [task], closure.depths)
     return TaskCost(task, info.mode, info.column, added, path)
 
 

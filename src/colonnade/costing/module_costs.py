@@ -121,21 +121,30 @@ def adapter_macs(adapter: nn.Module) -> int:
     return total
 
 
-def module_macs(module: nn.Module, shape: Shape) -> int:
-    """MACs of a column (on the network input shape), an adapter (on its source shape),
-    or a plain layer such as a head (on ``shape``)."""
+def module_macs(module: nn.Module, shape: Shape, depth: int | None = None) -> int:
+    """MACs of a column (on the network input shape; ``depth``: its stem and leading
+    blocks only), an adapter (on its source shape), or a plain layer such as a head (on
+    ``shape``)."""
     if isinstance(module, LateralAdapter):
         return adapter_macs(module)
     if isinstance(module, Column):
         total = layer_macs(module.stem, shape)
         shape = module_output_shape(module.stem, shape)
-        for block in module.blocks:
+        for block in list(module.blocks)[:depth]:
             total += layer_macs(block.weighted, shape)
             shape = module_output_shape(block.weighted, shape)
             total += layer_macs(block.post, shape)
             shape = module_output_shape(block.post, shape)
         return total
     return layer_macs(module, shape)
+
+
+def column_prefix(col: Column, depth: int | None = None) -> nn.Module:
+    """What of a column runs to ``depth`` blocks (its stem and leading blocks), as one
+    module for counting; the column itself when it runs whole."""
+    if depth is None or depth >= len(col.blocks):
+        return col
+    return nn.ModuleList([col.stem, *list(col.blocks)[:depth]])
 
 
 # ----------------------------------------------------------------------------- parameters

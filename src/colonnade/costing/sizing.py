@@ -31,6 +31,7 @@ from ..model.network import ProgressiveNet
 from ..model.schema import Conv1d, Conv2d, Dense, LateralSpec, LayerSpec, Norm, Spec
 from .costs import (
     NetworkCost,
+    column_prefix,
     count_params,
     ledger_of,
     module_macs,
@@ -84,14 +85,15 @@ def layer_figures(layer: LayerSpec, in_shape: Shape, out_shape: Shape) -> Figure
     return Figures()
 
 
-def column_figures(spec: Spec, width: float) -> Figures:
-    """A whole column of the template at ``width``."""
+def column_figures(spec: Spec, width: float, depth: int | None = None) -> Figures:
+    """A column of the template at ``width``: whole, or its stem and leading ``depth``
+    blocks."""
     plan = plan_column(spec, width)
     total, shape = Figures(), tuple(spec.input)
     for layer in plan.stem:
         out = layer_output_shape(layer, shape, width)
         total, shape = total + layer_figures(layer, shape, out), out
-    for block in plan.blocks:
+    for block in plan.blocks[:depth]:
         total += layer_figures(block.weighted, block.in_shape, block.pre_shape)
         shape = block.pre_shape
         for layer in block.post:
@@ -133,6 +135,25 @@ def _block_adapters(spec: Spec, lateral: LateralSpec, source_width: float,
         total += adapter_figures(lateral, src.blocks[b - 1].out_shape, dst.blocks[b].pre_shape,
                                  dst.blocks[b].weighted)
     return total
+
+
+def _measured_column(net: ProgressiveNet, k: int, depth: int) -> Figures:
+    """An existing column's stem and leading ``depth`` blocks, from its live modules."""
+    part = count_params(column_prefix(net.columns[k], depth), "column")
+    return Figures(part.total, part.float_buffers,
+                   module_macs(net.columns[k], tuple(net.input_shape), depth))
+
+
+def _measured_adapter(adapter: torch.nn.Module) -> Figures:
+    return Figures(count_params(adapter, "adapters").total, 0, module_macs(adapter, ()))
+
+
+def _future_adapter(meta: ProgressiveNet, key: str, lateral: LateralSpec) -> Figures:
+    """A projected adapter by the closed form, from its place in the meta network."""
+    info = meta.adapter_info[key]
+    shapes, target_shape, target = meta.lateral_geometry(info.sources, info.column,
+                                                         info.block, info.head)
+    return adapter_figures(lateral, shapes[0], target_shape, target)
 
 
 def _head_adapter(spec: Spec, lateral: LateralSpec, source_width: float,
@@ -264,21 +285,10 @@ def project(net: ProgressiveNet, n: int, width: float | None = None, mode: str =
     spec = net.spec
     base = base or ledger_of(net)
 
-    # Existing parts, measured from the live modules (so trimmed adapters count as they are).
-    col_fig = [Figures(count_params(col, "column").total, count_params(col, "column")
-                       .float_buffers, module_macs(col, tuple(net.input_shape)))
-               for col in net.columns]
-    into_fig = []  # live block adapters into each existing column
-    for k, col in enumerate(net.columns):
-        f = Figures()
-        for b in range(len(col.blocks)):
-            for key, _ in net.adapters_into_block(k, b):
-                ad = net.adapters[key]
-                f += Figures(count_params(ad, "adapters").total, 0, module_macs(ad, ()))
-        into_fig.append(f)
     widths = [ci.width for ci in net.column_info]
     network = Figures(base.total.params.total, base.total.params.float_buffers, 0)
     macs_all = base.total.macs
+    existing_columns = len(net.columns)
 
     if mode == "column":
         rule_base = column_figures(spec, w) + head_figures(plan_column(spec, w).out_shape[0], c)
@@ -291,6 +301,11 @@ def project(net: ProgressiveNet, n: int, width: float | None = None, mode: str =
         per = Figures()
     rule = GrowthRule(mode, w if mode == "column" else widths[-1], c, lat.kind, rule_base, per)
 
+    # The projected network is grown for real on the meta device (shapes, no memory): its
+    # closures say which parts each future task's path holds, block by block (a head-only
+    # task with no head adapters still reaches earlier columns through its carrier's own
+    # adapters); the figures of those parts come from the live modules (existing parts,
+    # as trimmed) or from the closed forms above (future parts).
     meta = _meta_copy(net, lat)
     names = set(net.tasks)
     out: list[ProjectedTask] = []
@@ -307,8 +322,6 @@ def project(net: ProgressiveNet, n: int, width: float | None = None, mode: str =
                 adapters += _block_adapters(spec, lat, widths[j], w)
             adapters = _scaled(adapters, keep)
             head = head_figures(plan_column(spec, w).out_shape[0], c)
-            col_fig.append(cf)
-            into_fig.append(adapters)
             widths.append(w)
             carrier = k
             meta.add_column(name, c, width=w, seed=0)
@@ -322,18 +335,26 @@ def project(net: ProgressiveNet, n: int, width: float | None = None, mode: str =
             head_adapters += _head_adapter(spec, lat, widths[j], c)
         head_adapters = _scaled(head_adapters, keep)
         added = cf + adapters + head + head_adapters
-        closure = range(carrier + 1) if lat.kind != "none" else [carrier]
-        path_cols = sum((col_fig[j] for j in closure), Figures())
-        path_into = sum((into_fig[j] for j in closure), Figures())
-        path = path_cols + path_into + head + head_adapters
         meta.freeze()
+        closure = meta.closure(name)
+        path_cols, path_adapters = Figures(), Figures()
+        for j in closure.columns:
+            if j < existing_columns:
+                path_cols += _measured_column(net, j, closure.depth(j))
+            else:
+                path_cols += column_figures(spec, widths[j], closure.depth(j))
+        for key in closure.adapters:
+            if key in net.adapters:
+                path_adapters += _measured_adapter(net.adapters[key])
+            else:
+                path_adapters += _scaled(_future_adapter(meta, key, lat), keep)
+        path = path_cols + path_adapters + head
         network = network + Figures(added.params, added.float_buffers, 0)
         macs_all += added.macs
-        elements, _ = peak_activation(meta, meta.closure(name).columns, [name])
+        elements, _ = peak_activation(meta, closure.columns, [name], closure.depths)
         out.append(ProjectedTask(
             name, i, mode, carrier, widths[carrier], added, path, elements, network, macs_all,
             {"column": cf.params, "adapters": adapters.params + head_adapters.params,
              "head": head.params},
-            {"column": path_cols.macs, "adapters": path_into.macs + head_adapters.macs,
-             "head": head.macs}))
+            {"column": path_cols.macs, "adapters": path_adapters.macs, "head": head.macs}))
     return Projection(rule, out)

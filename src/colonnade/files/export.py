@@ -28,7 +28,9 @@ from ..clock import now
 from ..errors import ColonnadeError, SealedError
 from ..model.adapters import JointAdapter, LinearAdapter, NonlinearAdapter
 from ..model.digest import closure_digests
+from ..model.guard import closure_definition
 from ..model.network import ProgressiveNet
+from ..model.parts import CLOSURE_DEFINITION
 from .standalone import FORMAT, LAYERS, VERSION, TaskModel
 
 __all__ = ["ExportError", "describe_layer", "task_architecture", "standalone_state",
@@ -114,13 +116,14 @@ def task_architecture(net: ProgressiveNet, task: str) -> dict[str, Any]:
     columns, adapters = [], []
     for k in closure.columns:
         col = net.columns[k]
+        blocks = list(col.blocks)[:closure.depth(k)]  # only the blocks the task runs
         columns.append({
             "index": k,
             "stem": [describe_layer(m) for m in col.stem],
             "blocks": [{"weighted": describe_layer(b.weighted),
-                        "post": [describe_layer(m) for m in b.post]} for b in col.blocks],
+                        "post": [describe_layer(m) for m in b.post]} for b in blocks],
         })
-        for b in range(len(col.blocks)):
+        for b in range(len(blocks)):
             for key, _ in net.adapters_into_block(k, b):
                 adapters.append({"key": key, "sources": list(net.adapter_sources(key)),
                                  "column": k, "block": b, "head": None,
@@ -159,7 +162,16 @@ def standalone_blob(net: ProgressiveNet, task: str) -> dict[str, Any]:
     state = standalone_state(net, task)
     digest, _ = closure_digests(state)
     seal = _seal_of(net, task)
-    if seal is not None and seal["closure_sha256"] not in (None, digest):
+    sealed_digest = digest
+    definition = closure_definition(net.meta["seals"][task][-1]) if seal is not None else None
+    if seal is not None and definition != CLOSURE_DEFINITION:
+        # A seal made under another closure definition is compared by its own; the file
+        # still ships only what the task runs.
+        try:
+            sealed_digest, _ = closure_digests(net.closure_state(task, definition))
+        except ColonnadeError:
+            sealed_digest = None
+    if seal is not None and seal["closure_sha256"] not in (None, sealed_digest):
         raise SealedError(f"task {task!r} no longer matches its seal v{seal['version']}; "
                           f"run 'colonnade check' on the workspace before exporting")
     dtypes = sorted({str(t.dtype).removeprefix("torch.") for t in state.values()

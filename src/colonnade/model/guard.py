@@ -18,6 +18,7 @@ from torch import nn
 
 from ..errors import SealedError
 from .digest import closure_digests, tensor_digest
+from .parts import CLOSURE_DEFINITIONS
 from .seal_index import active_seals, versions_of
 
 # The network calls the guard, so the guard cannot import the network: ``net`` below is a
@@ -25,7 +26,7 @@ from .seal_index import active_seals, versions_of
 ProgressiveNet = nn.Module
 
 __all__ = ["seals_of", "latest_seal", "sealed_tasks", "is_sealed", "sealed_parts", "guard",
-           "guard_state", "closure_findings", "verify_unchanged"]
+           "guard_state", "closure_findings", "verify_unchanged", "closure_definition"]
 
 
 def seals_of(net: ProgressiveNet, task: str) -> list[dict[str, Any]]:
@@ -101,6 +102,13 @@ def _recorded_tensors(entry: Mapping[str, Any]) -> dict[str, str]:
     return dict(tensors) if isinstance(tensors, dict) else {}
 
 
+def closure_definition(entry: Mapping[str, Any]) -> Any:
+    """The closure definition a seal was made with: 1 when the entry predates the field
+    (whole columns), else the recorded number (``model.parts.CLOSURE_DEFINITION``)."""
+    closure = entry.get("closure")
+    return closure.get("definition", 1) if isinstance(closure, dict) else 1
+
+
 def closure_findings(net: ProgressiveNet, task: str, entry: Mapping[str, Any],
                      where: str = "") -> tuple[list[str], list[str]]:
     """What differs between a task's closure now and its seal, one sentence each.
@@ -112,7 +120,12 @@ def closure_findings(net: ProgressiveNet, task: str, entry: Mapping[str, Any],
     version = entry.get("version")
     if task not in net.task_info:
         return [f"task {task!r} of seal v{version} is no longer in the network"], []
-    state = net.closure_state(task)
+    definition = closure_definition(entry)
+    if definition not in CLOSURE_DEFINITIONS:
+        return [], [f"seal v{version} of task {task!r} draws its closure by definition "
+                    f"{definition!r}, which this colonnade does not know; check it with the "
+                    f"colonnade that made it"]
+    state = net.closure_state(task, definition)  # as the seal drew it
     whole, per = closure_digests(state)
     recorded = _recorded_tensors(entry)
     moved = []

@@ -12,7 +12,7 @@ of the task being grown are trainable, and ``train()`` touches only those.
 from __future__ import annotations
 
 import re
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator
 from typing import Any
 
 import torch
@@ -24,7 +24,17 @@ from .architecture import ArchitectureRecord
 from .guard import guard, guard_state, is_sealed
 from .layers import Shape, check_width
 from .normalization import InputNormalization
-from .parts import MAX_CLASSES, AdapterInfo, Block, Closure, Column, ColumnInfo, TaskInfo
+from .parts import (
+    CLOSURE_DEFINITION,
+    CLOSURE_DEFINITIONS,
+    MAX_CLASSES,
+    AdapterInfo,
+    Block,
+    Closure,
+    Column,
+    ColumnInfo,
+    TaskInfo,
+)
 from .schema import Dense, Spec
 
 __all__ = ["ProgressiveNet", "Column", "Block", "TaskInfo", "ColumnInfo", "AdapterInfo",
@@ -107,28 +117,47 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
         return ([self.columns[j].plan.blocks[block - 1].out_shape for j in sources],
                 dst.pre_shape, dst.weighted)
 
-    def closure(self, task: str) -> Closure:
-        """Columns and adapters reachable from the task's head through live adapters."""
+    def closure(self, task: str, definition: int = CLOSURE_DEFINITION) -> Closure:
+        """Columns, blocks and adapters reachable from the task's head through live adapters.
+
+        A head reads the last block of its column and, through head adapters, the last
+        block of each source column; an adapter into block b of column k reads block b-1
+        of its sources. Block b needs blocks 0..b-1 of its own column, so each column
+        contributes a prefix of blocks. ``definition`` 1 takes whole columns instead (how
+        seals made before block-level closures drew them).
+        """
         info = self.task(task)
+        if definition not in CLOSURE_DEFINITIONS:
+            raise WorkspaceError(f"closure definition {definition!r} is not known to this "
+                                 f"colonnade (it knows {list(CLOSURE_DEFINITIONS)})")
+        full = {k: len(col.blocks) for k, col in enumerate(self.columns)}
+        need: dict[int, int] = {info.column: full[info.column]}
         adapters: list[str] = []
-        columns = {info.column}
         for key, _ in self._into_head.get(task, []):
             adapters.append(key)
-            columns.update(self._sources[key])
+            for j in self._sources[key]:
+                need[j] = full[j]
         # Sources always sit to the left of their targets, so one right-to-left pass
         # over columns collects every transitive dependency.
         for k in range(info.column, -1, -1):
-            if k not in columns:
+            if k not in need:
                 continue
-            for b in range(len(self.columns[k].blocks)):
+            if definition == 1:
+                need[k] = full[k]
+            for b in range(need[k]):
                 for key, _ in self._into.get((k, b), []):
                     adapters.append(key)
-                    columns.update(self._sources[key])
-        return Closure(task, tuple(sorted(columns)), tuple(sorted(adapters)), task)
+                    for j in self._sources[key]:
+                        need[j] = max(need.get(j, 0), b)  # reads block b-1: blocks 0..b-1
+        columns = tuple(sorted(k for k, d in need.items() if d > 0 or k == info.column))
+        return Closure(task, columns, tuple(sorted(adapters)), task,
+                       {k: need[k] for k in columns}, {k: full[k] for k in columns},
+                       definition)
 
-    def closure_state(self, task: str) -> dict[str, torch.Tensor]:
+    def closure_state(self, task: str, definition: int = CLOSURE_DEFINITION,
+                      ) -> dict[str, torch.Tensor]:
         """The parameters and buffers a task's output depends on, by state_dict key."""
-        prefixes = self.closure(task).state_prefixes()
+        prefixes = self.closure(task, definition).state_prefixes()
         return {k: v for k, v in self.state_dict().items() if k.startswith(prefixes)}
 
     def part_modules(self) -> Iterator[tuple[str, nn.Module]]:
@@ -166,14 +195,16 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
             raise DataError(f"input has sample shape {list(x.shape[1:])}, but the network "
                             f"expects {list(self.input_shape)}")
 
-    def run_columns(self, x: torch.Tensor, columns: list[int] | tuple[int, ...],
+    def run_columns(self, x: torch.Tensor, columns: Iterable[int],
                     given: dict[int, list[torch.Tensor]] | None = None,
+                    depths: dict[int, int] | None = None,
                     ) -> dict[int, list[torch.Tensor]]:
         """Block outputs of the named columns, in increasing order.
 
         ``given`` holds block outputs already known (for example cached outputs of frozen
-        columns); those columns are not recomputed. Every source of a live adapter into a
-        listed column must itself be listed or given.
+        columns); those columns are not recomputed. ``depths`` limits a column to its
+        leading blocks (a closure's ``depths``); absent columns run whole. Every source of
+        a live adapter into a block that runs must itself be listed or given.
         """
         outs: dict[int, list[torch.Tensor]] = dict(given or {})
         x = self.input_norm(x)
@@ -187,7 +218,10 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
             for layer in col.stem:
                 h = layer(h)
             hs: list[torch.Tensor] = []
-            for b, block in enumerate(col.blocks):
+            blocks = list(col.blocks)
+            if depths is not None and k in depths:
+                blocks = blocks[:depths[k]]
+            for b, block in enumerate(blocks):
                 h = block.weighted(h)
                 for key, _ in self._into.get((k, b), []):
                     h = h + self._lateral(key, outs, b - 1)
@@ -225,7 +259,8 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
             task = self.tasks[0]
         self.task(task)
         self._check_input(x)
-        outs = self.run_columns(x, self.closure(task).columns, given)
+        closure = self.closure(task)
+        outs = self.run_columns(x, closure.columns, given, closure.depths)
         return self.head_logits(task, outs)
 
     def forward_all(self, x: torch.Tensor) -> dict[str, torch.Tensor]:

@@ -15,7 +15,8 @@ import torch.nn as nn
 from .layers import BlockPlan, ColumnPlan, build_layer, layer_output_shape, plan_column
 from .schema import Spec
 
-__all__ = ["MAX_CLASSES", "TaskInfo", "ColumnInfo", "AdapterInfo", "Closure", "Block", "Column"]
+__all__ = ["MAX_CLASSES", "TaskInfo", "ColumnInfo", "AdapterInfo", "Closure", "Block", "Column",
+           "CLOSURE_DEFINITION", "CLOSURE_DEFINITIONS"]
 
 # A bound on a task's class count, checked before a head is allocated: far above any task
 # colonnade is meant for, so a larger count is nearly always a label mistake (an id used
@@ -70,20 +71,50 @@ class AdapterInfo:
         return f"column {self.column} block {self.block}"
 
 
+# How a closure is drawn. 1: whole columns (every block of every column reached, and
+# every adapter into them). 2: block prefixes: a column's block is in the closure only if
+# a live path from the task's head reaches it. Seals record the definition they were made
+# with and are checked by it, so seals made under definition 1 keep verifying.
+CLOSURE_DEFINITION = 2
+CLOSURE_DEFINITIONS = (1, 2)
+
+
 @dataclass(frozen=True)
 class Closure:
-    """Every part a task's output depends on."""
+    """Every part a task's output depends on.
+
+    ``depths`` maps each closure column to how many of its leading blocks the task runs
+    (a column's blocks run in order, so what is reached is always a prefix; its stem
+    comes with it); ``full`` to how many blocks the column has. ``definition`` says how
+    the closure was drawn (see ``CLOSURE_DEFINITION``).
+    """
 
     task: str
     columns: tuple[int, ...]
     adapters: tuple[str, ...]
     head: str
+    depths: dict[int, int] = field(default_factory=dict)
+    full: dict[int, int] = field(default_factory=dict)
+    definition: int = CLOSURE_DEFINITION
+
+    def depth(self, column: int) -> int:
+        """Leading blocks of ``column`` in the closure (all of them when not recorded)."""
+        return self.depths.get(column, self.full.get(column, 0))
+
+    def is_partial(self, column: int) -> bool:
+        return column in self.full and self.depth(column) < self.full[column]
 
     def state_prefixes(self) -> tuple[str, ...]:
         """Prefixes of ``state_dict`` keys that belong to this closure."""
+        cols: list[str] = []
+        for k in self.columns:
+            if self.is_partial(k):
+                cols.append(f"columns.{k}.stem.")
+                cols += [f"columns.{k}.blocks.{b}." for b in range(self.depth(k))]
+            else:
+                cols.append(f"columns.{k}.")
         # The input normalisation (when the spec has one) feeds every task.
-        return (("input_norm.",) + tuple(f"columns.{k}." for k in self.columns)
-                + tuple(f"adapters.{a}." for a in self.adapters)
+        return (("input_norm.",) + tuple(cols) + tuple(f"adapters.{a}." for a in self.adapters)
                 + (f"heads.{self.head}.",))
 
 

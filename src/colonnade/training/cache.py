@@ -43,10 +43,11 @@ def constant_columns(net: ProgressiveNet, task: str) -> list[int]:
     adapters reads a constant column. Frozen parts always run in eval mode.
     """
     constant: list[int] = []
-    for k in net.closure(task).columns:  # sorted: sources come before their targets
+    closure = net.closure(task)
+    for k in closure.columns:  # sorted: sources come before their targets
         if net.is_trainable(f"column:{k}"):
             continue
-        keys = [key for b in range(len(net.columns[k].blocks))
+        keys = [key for b in range(closure.depth(k))
                 for key, _ in net.adapters_into_block(k, b)]
         if all(not net.is_trainable(f"adapter:{key}")
                and all(j in constant for j in net.adapter_sources(key)) for key in keys):
@@ -58,10 +59,11 @@ def needed_outputs(net: ProgressiveNet, task: str) -> dict[int, tuple[int, ...]]
     """Block outputs of constant columns that the task's other parts read: column -> blocks."""
     constant = set(constant_columns(net, task))
     needed: dict[int, set[int]] = {}
-    for k in net.closure(task).columns:
+    closure = net.closure(task)
+    for k in closure.columns:
         if k in constant:
             continue
-        for b in range(len(net.columns[k].blocks)):
+        for b in range(closure.depth(k)):
             for key, _ in net.adapters_into_block(k, b):
                 for j in net.adapter_sources(key):  # several for a joint adapter
                     if j in constant:
@@ -94,6 +96,7 @@ class FrozenActivations:
         self.n = int(x.shape[0])
         self.columns = constant_columns(net, task)
         self.needed = needed_outputs(net, task)
+        self.depths = {k: net.closure(task).depth(k) for k in self.columns}
         self.blocks = {k: len(net.columns[k].blocks) for k in self.columns}
         self.device = net.device
         self.bytes_in_memory = 0
@@ -146,7 +149,8 @@ class FrozenActivations:
             for start in range(0, self.n, chunk):
                 stop = min(start + chunk, self.n)
                 first = max(0, stop - chunk) if full_last else start
-                outs = net.run_columns(x[first:stop].to(self.device), self.columns)
+                outs = net.run_columns(x[first:stop].to(self.device), self.columns,
+                                       depths=self.depths)
                 for k, blocks in self.needed.items():
                     for b in blocks:
                         if start == 0:

@@ -73,6 +73,14 @@ def _full(dot: Any, G: nx.DiGraph, focus: set[str] | None, show_removed: bool,
     def faded(part: str | None) -> bool:
         return focus is not None and part is not None and part not in focus
 
+    def node_faded(d: dict[str, Any]) -> bool:
+        """A layer outside the blocks the focused task runs fades, even in its column."""
+        if faded(d.get("part")):
+            return True
+        block = d.get("block")
+        return (focus is not None and d.get("kind") == "layer" and block is not None
+                and f"block:{d['column']}:{block}" not in focus)
+
     def mark(fade: bool) -> str:
         return "faded" if fade else "focus"
 
@@ -104,6 +112,7 @@ def _full(dot: Any, G: nx.DiGraph, focus: set[str] | None, show_removed: bool,
                    id=f"cluster_c{k}", **css_class(f"column {mark(fade)}"))
             for n in nodes:
                 d = G.nodes[n]
+                fade = node_faded(d)
                 if d["weighted"]:
                     figures = f"{si(d['params'])} params, {si(d['macs'])} MACs"
                     label = f"<<B>{esc(d['label'])}</B><BR/>{small(figures, fade)}>"
@@ -129,7 +138,7 @@ def _full(dot: Any, G: nx.DiGraph, focus: set[str] | None, show_removed: bool,
     for u, v, d in G.edges(data=True):
         eid = edge_id(u, v, d)
         if d["role"] == "forward":
-            fade = faded(G.nodes[u].get("part")) or faded(G.nodes[v].get("part"))
+            fade = node_faded(G.nodes[u]) or node_faded(G.nodes[v])
             shown.forward = True
             dot.edge(u, v, id=eid, **css_class(f"forward {mark(fade)}"),
                      color=FADED["edge"] if fade else FORWARD_COLOUR, penwidth="1.2",

@@ -122,7 +122,9 @@ def title_of(G: nx.DiGraph, net: ProgressiveNet, task: str | None, compact: bool
         line += f"<BR/>sealed: {esc(name_list(sealed, 8))}"
     if task is not None:
         c = net.closure(task)
-        cols = [str(k) for k in c.columns]
+        cols = [str(k) if not c.is_partial(k) else
+                (f"{k} (block 0 only)" if c.depth(k) == 1 else
+                 f"{k} (blocks 0-{c.depth(k) - 1} only)") for k in c.columns]
         cols_text = cols[0] if len(cols) == 1 else ", ".join(cols[:-1]) + " and " + cols[-1]
         line += (f"<BR/>focus: task {esc(task)} runs column{'s' * (len(cols) != 1)} "
                  f"{cols_text} with {len(c.adapters)} lateral "

@@ -281,10 +281,12 @@ def _add_lateral(G: nx.DiGraph, u: str, v: str, attrs: dict[str, Any]) -> None:
 
 # ----------------------------------------------------------------------------- views
 def closure_parts(net: ProgressiveNet, task: str) -> set[str]:
-    """Part ids of a task's closure: its columns, live adapters and head."""
+    """Part ids of a task's closure: its columns, live adapters and head, and one
+    ``block:K:B`` id per column block it runs (a column may be in it only in part)."""
     c = net.closure(task)
     return ({f"column:{k}" for k in c.columns} | {f"adapter:{a}" for a in c.adapters}
-            | {f"head:{c.head}"})
+            | {f"head:{c.head}"}
+            | {f"block:{k}:{b}" for k in c.columns for b in range(c.depth(k))})
 
 
 def column_graph(G: nx.DiGraph) -> nx.DiGraph:
