@@ -22,7 +22,7 @@ __all__ = ["cost_workspace", "write_report", "draw_workspace", "render"]
 def write_report(folder: str | Path, out: str | Path, hardware: str | Path | None = None,
                  project_n: int = DEFAULT_PROJECT, latency: bool = True, repeats: int = 20,
                  since: str | int | None = None, pdf: bool = True, check: bool = True,
-                 ) -> dict[str, Any]:
+                 threads: int = 1) -> dict[str, Any]:
     """``colonnade report``: build the report of a workspace and write it into ``out``.
 
     The report opens with a fresh ``check`` of every sealed task (``check=False`` skips
@@ -42,7 +42,7 @@ def write_report(folder: str | Path, out: str | Path, hardware: str | Path | Non
         changes = changes_section(changes_data)
     files = build_report(net, folder.resolve().name or str(folder), profile, project_n,
                          latency, repeats, check=checked, changes=changes,
-                         changes_data=changes_data, pdf=pdf)
+                         changes_data=changes_data, pdf=pdf, threads=threads)
     out.mkdir(parents=True, exist_ok=True)
     for name, data in files.items():
         atomic_write(out / name, data)
@@ -60,7 +60,8 @@ def draw_workspace(folder: str | Path, output: str | Path, task: str | None = No
 
 def cost_workspace(folder: str | Path, project_n: int = 0, width: float | None = None,
                    hardware: str | Path | None = None, classes: int | None = None,
-                   latency: bool = True, repeats: int = 20) -> dict[str, Any]:
+                   latency: bool = True, repeats: int = 20, threads: int = 1,
+                   ) -> dict[str, Any]:
     """What each task of a workspace costs now, what N more will cost, and the verdicts.
 
     Costs are read from the live modules of each task's closure; latency is measured on
@@ -68,7 +69,7 @@ def cost_workspace(folder: str | Path, project_n: int = 0, width: float | None =
     """
     profile = load_profile(hardware) if hardware is not None else None
     net = read_workspace(folder)
-    out = cost_network(net, project_n, width, profile, classes, latency, repeats)
+    out = cost_network(net, project_n, width, profile, classes, latency, repeats, threads)
     out["workspace"] = str(folder)
     return out
 

@@ -24,6 +24,8 @@ def _bytes(n: float | None) -> str:
 def _latency_cell(lat: dict[str, Any] | None) -> str:
     if not lat:
         return "-"
+    if lat.get("trusted") is False:  # too spread out to be a result
+        return f"noisy ({lat['q1']:.3f}-{lat['q3']:.3f})"
     return f"{lat['median']:.3f} ({lat['q1']:.3f}-{lat['q3']:.3f})"
 
 
@@ -45,8 +47,16 @@ def _print_costs(led: dict[str, Any]) -> None:
              _bytes(t["activation_bytes"]), _latency_cell(t["latency_ms"]["batch_1"]),
              _latency_cell(t["latency_ms"]["batch_64"])]
             for t in led["tasks"] + [dict(led["total"], task="whole network, one pass")]]
+    threads = led.get("latency_threads")
+    on = f", {threads} thread{'s' * (threads != 1)}" if threads else ""
     print(table(rows, ["task", "MACs", "weights fp32", "fp16/bf16", "int8",
-                       "peak activations", "latency b1 ms (IQR)", "b64 ms (IQR)"]))
+                       "peak activations", f"latency b1 ms (IQR){on}", f"b64 ms (IQR){on}"]))
+    lats = [t["latency_ms"][b] for t in led["tasks"] + [led["total"]]
+            for b in ("batch_1", "batch_64") if t["latency_ms"][b]]
+    if any(lat.get("trusted") is False for lat in lats):
+        print(f"noisy: that latency's interquartile range is wider than "
+              f"{lats[0]['spread_limit']:g} x its median, so the machine was too busy for a "
+              f"figure; measure again on a quiet machine or with more --repeats")
     print(f"one pass over all tasks: {led['total']['macs']:,} MACs; each task run alone: "
           f"{led['total']['macs_separate']:,} MACs in all")
 
@@ -99,7 +109,8 @@ def _cost(args: argparse.Namespace) -> int:
 
     led = cost_workspace(args.workspace, project_n=args.project or 0, width=args.width,
                          hardware=args.hardware, classes=args.classes,
-                         latency=not args.no_latency, repeats=args.repeats)
+                         latency=not args.no_latency, repeats=args.repeats,
+                         threads=args.threads)
     if args.json:
         print_json(led)
         return 0
@@ -126,7 +137,7 @@ def _report(args: argparse.Namespace) -> int:
     result = write_report(args.workspace, args.output, hardware=args.hardware,
                           project_n=args.project, latency=not args.no_latency,
                           repeats=args.repeats, since=args.since, pdf=not args.no_pdf,
-                          check=not args.no_check)
+                          check=not args.no_check, threads=args.threads)
     print(f"wrote {', '.join(result['files'])} to {result['output']}")
     return 0
 
@@ -147,6 +158,9 @@ def _latency_flags(p: argparse.ArgumentParser) -> None:
     p.add_argument("--repeats", type=positive_int, default=20,
                    help="timed calls per latency figure (default 20)")
     p.add_argument("--no-latency", action="store_true", help="skip the latency measurement")
+    p.add_argument("--threads", type=positive_int, default=1,
+                   help="torch threads while latency is measured (default 1; stated beside "
+                        "every figure)")
 
 
 def add_parsers(verb: Any) -> None:

@@ -24,7 +24,7 @@ from .costs import (
     weight_bytes,
 )
 from .hardware import HardwareProfile
-from .latency import Latency, all_tasks_latency, task_latency
+from .latency import ALL_TASKS, SPREAD_LIMIT, Latency, measure_latencies
 from .sizing import Projection, project
 from .verdicts import Need, Verdict, first_break, price_options, verdicts
 
@@ -41,8 +41,11 @@ CONVENTIONS = {
                     "into them",
     "params_path": "the parameters its inference uses: its closure",
     "buffers": "buffer elements (norm running statistics and counters), not parameters",
-    "latency_ms": "measured on this machine: median, quartiles and extremes of repeated "
-                  "calls after warm-up, at batch 1 and 64",
+    "latency_ms": "measured on this machine with a fixed thread count (--threads, default "
+                  "1): median, quartiles and extremes of repeated calls after warm-up, at "
+                  "batch 1 and 64, every task timed in turn so that load from elsewhere "
+                  "hits all alike; a figure whose interquartile range exceeds "
+                  f"{SPREAD_LIMIT:g} x its median is marked untrustworthy (trusted: false)",
 }
 
 
@@ -100,7 +103,7 @@ def _projection(proj: Projection) -> dict[str, Any]:
 
 def cost_network(net: ProgressiveNet, project_n: int = 0, width: float | None = None,
                  hardware: HardwareProfile | None = None, classes: int | None = None,
-                 latency: bool = True, repeats: int = 20) -> dict[str, Any]:
+                 latency: bool = True, repeats: int = 20, threads: int = 1) -> dict[str, Any]:
     """The ledger of a network in memory; see ``colonnade.app.views.cost_workspace``."""
     if width is not None and not project_n:
         raise UsageError("--width is a what-if for future tasks; use it with --project N")
@@ -112,22 +115,24 @@ def cost_network(net: ProgressiveNet, project_n: int = 0, width: float | None = 
     base: NetworkCost = ledger_of(net)
     proj = project(net, project_n, width=width, classes=classes, base=base) if project_n \
         else None
+    measured = measure_latencies(net, [t.task for t in base.tasks], repeats, threads=threads) \
+        if latency and base.tasks else {}
     tasks = []
     for t in base.tasks:
         row = {"task": t.task, "mode": t.mode, "column": t.column,
                "params_added": t.added.total, "params_path": t.path.params.total,
                "params": _params(t.path.params), "params_added_by_part": _params(t.added)}
         row.update(_path(t.path))
-        row["latency_ms"] = _latency(task_latency(net, t.task, repeats) if latency else None)
+        row["latency_ms"] = _latency(measured.get(t.task))
         tasks.append(row)
     total: dict[str, Any] = {"tasks": len(net.tasks), "columns": len(net.columns),
                              "params": base.total.params.total,
                              "params_by_part": _params(base.total.params)}
     total.update(_path(base.total))
     total["macs_separate"] = base.separate_macs
-    total["latency_ms"] = _latency(all_tasks_latency(net, repeats)
-                                   if latency and net.tasks else None)
+    total["latency_ms"] = _latency(measured.get(ALL_TASKS))
     out: dict[str, Any] = {"spec": net.spec.name, "input": list(net.input_shape),
+                           "latency_threads": threads if latency else None,
                            "lateral": net.spec.lateral.kind, "conventions": dict(CONVENTIONS),
                            "tasks": tasks, "total": total}
     if proj is not None:

@@ -18,6 +18,7 @@ from typing import Any
 from .._version import __version__
 from ..clock import now
 from ..costing.hardware import format_bytes, format_rate, verdict_text
+from ..costing.latency import SPREAD_LIMIT
 from ..costing.ledger import cost_network
 from ..evidence.transfer import record
 from ..model.guard import sealed_tasks
@@ -108,6 +109,8 @@ def _n(v: Any) -> str:
 def _ms(lat: dict[str, Any] | None) -> str:
     if not lat:
         return "-"
+    if lat.get("trusted") is False:  # too spread out to be reported as a result
+        return f"untrustworthy: spread {lat['q1']:.3f}-{lat['q3']:.3f}"
     return f"{lat['median']:.3f} ({lat['q1']:.3f}-{lat['q3']:.3f})"
 
 
@@ -217,7 +220,7 @@ def build_report(net: ProgressiveNet, name: str, hardware: Any = None,
                  project_n: int = DEFAULT_PROJECT, latency: bool = True, repeats: int = 20,
                  check: Mapping[str, Any] | None = None, record: Mapping[str, Any] | None = None,
                  changes: Section | None = None, changes_data: Any = None, pdf: bool = True,
-                 ) -> dict[str, bytes]:
+                 threads: int = 1) -> dict[str, bytes]:
     """Every report file by name, as bytes (nothing is written).
 
     ``check`` is the result of a fresh ``check`` of the workspace (``CheckReport.to_dict``),
@@ -226,7 +229,7 @@ def build_report(net: ProgressiveNet, name: str, hardware: Any = None,
     """
     generated = now()
     ledger = cost_network(net, project_n=project_n if net.tasks else 0, hardware=hardware,
-                          latency=latency, repeats=repeats)
+                          latency=latency, repeats=repeats, threads=threads)
     accuracy = accuracy_record(net)
     proj = ledger.get("projection", {}).get("tasks", [])
     figures: dict[str, bytes] = {}
@@ -266,7 +269,15 @@ def build_report(net: ProgressiveNet, name: str, hardware: Any = None,
         notes.append(f"No architecture diagram: {why}.")
     title = f"colonnade report: {name}"
     notes.append(f"Generated {generated} by colonnade {__version__}. Costs are derived from "
-                 f"shapes; latency is measured on the machine that wrote this report.")
+                 f"shapes; latency is measured on the machine that wrote this report"
+                 + (f", with {threads} thread{'s' * (threads != 1)}." if latency else "."))
+    noisy = [t["task"] for t in ledger["tasks"] + [dict(ledger["total"], task="one pass")]
+             if any((t["latency_ms"].get(b) or {}).get("trusted") is False
+                    for b in ("batch_1", "batch_64"))]
+    if noisy:
+        notes.append(f"Latency of {', '.join(noisy)} is marked untrustworthy: its "
+                     f"interquartile range exceeded {SPREAD_LIMIT:g} x its median, so the "
+                     f"machine was too busy for a figure; measure again on a quiet machine.")
     data = {"title": title, "generated": generated, "colonnade": __version__,
             "evidence": evidence_data(net, check, record, generated), "ledger": ledger,
             "accuracy": accuracy, "changes": changes_data, "figures": sorted(figures),
