@@ -56,6 +56,8 @@ _PUBLIC: dict[str, tuple[str, str | None]] = {
     "write_report": ("colonnade.app.views", "write_report"),
     "draw_workspace": ("colonnade.app.views", "draw_workspace"),
     "diff_workspaces": ("colonnade.app.diff", "diff_workspaces"),
+    "retrain_workspace": ("colonnade.app.lifecycle", "retrain_workspace"),
+    "retire_workspace": ("colonnade.app.lifecycle", "retire_workspace"),
     "usage_workspace": ("colonnade.app.trim", "usage_workspace"),
     "trim_workspace": ("colonnade.app.trim", "trim_workspace"),
     "export_task": ("colonnade.app.export", "export_task"),

@@ -81,6 +81,7 @@ def _describe(folder: str | Path, manifest: dict[str, Any], summary: dict[str, A
         sizes = summary["tasks"][name]
         tasks.append({
             "task": name, "mode": t["mode"], "column": t["column"], "classes": t["classes"],
+            "state": t.get("state", "live"),
             "val_accuracy": (records.get(name) or {}).get("val_accuracy"),
             "closure_columns": list(sizes["closure_columns"]),
             "params_path": sizes["params_path"],

@@ -70,8 +70,9 @@ def _grow(net: ProgressiveNet, folder: str | Path, task: str, train: str | Path,
           cache_mb: float | None, target: float | None, options: DataOptions, workers: int,
           ) -> dict[str, Any]:
     if task in net.task_info:
-        raise UsageError(f"a task named {task!r} exists already in {folder}; choose another "
-                         f"name")
+        retired = " (retired, its record kept)" if net.task(task).state != "live" else ""
+        raise UsageError(f"a task named {task!r} exists already in {folder}{retired}; choose "
+                         f"another name, or retrain it with 'colonnade retrain'")
     if mode == "head" and not net.columns:
         raise UsageError("the workspace has no column yet; grow the first task with "
                          "--mode column")
@@ -108,9 +109,12 @@ def predict_file(folder: str | Path, task: str | None, data: str | Path, out: st
     if not out.parent.is_dir():
         raise UsageError(f"{out.parent}: no such folder for the output")
     net = read_workspace(folder)
-    if all_tasks and not net.tasks:
-        raise UsageError(f"{folder} has no task yet; grow one before predicting")
-    tasks = net.tasks if all_tasks else [task]
+    if all_tasks and not net.live_tasks:
+        raise UsageError(f"{folder} has no live task; grow one before predicting")
+    if not all_tasks and net.task(task).state != "live":
+        raise UsageError(f"task {task!r} is retired, so it is no longer predicted; its "
+                         f"record stays in 'colonnade show'")
+    tasks = net.live_tasks if all_tasks else [task]
     infos = [net.task(t) for t in tasks]
     if all_tasks:  # labels, if any, keep their own names; each task maps them on its own
         loaded = load_for_spec(data, net.spec, need_labels=False, split=False, labels=labels,

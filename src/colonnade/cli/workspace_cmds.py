@@ -79,7 +79,8 @@ def _show(args: argparse.Namespace) -> int:
         print("no tasks yet; grow one with 'colonnade grow WS --task NAME --train FILE'")
     else:
         print()
-        print(table([[t["task"], t["mode"], t["column"], t["classes"], t["params_path"],
+        print(table([[t["task"] + (" (retired)" if t.get("state") == "retired" else ""),
+                      t["mode"], t["column"], t["classes"], t["params_path"],
                       ",".join(map(str, t["closure_columns"])), t["val_accuracy"],
                       f"v{t['seal']}" if t.get("seal") else "-"]
                      for t in info["tasks"]],

@@ -326,8 +326,14 @@ def network_cost(net: ProgressiveNet) -> PathCost:
     """The whole network: every part's parameters, and one ``forward_all`` pass.
 
     Parameters count every module the network holds; MACs and activations count what
-    ``forward_all`` runs: every column, every live adapter, every head.
+    ``forward_all`` runs: every column, every live adapter, every head. Once a task is
+    retired, both count only what the live tasks use: the parts only a retired task
+    read are left out.
     """
+    if len(net.live_tasks) < len(net.tasks):
+        depths = net.live_depths()
+        adapters = sorted({a for t in net.live_tasks for a in net.closure(t).adapters})
+        return _path(net, sorted(depths), adapters, net.live_tasks, depths)
     live = [k for k, a in net.adapter_info.items() if a.state == "live" and k in net.adapters]
     cost = _path(net, list(range(len(net.columns))), live, net.tasks)
     held = ParamCount()
@@ -339,7 +345,7 @@ def network_cost(net: ProgressiveNet) -> PathCost:
 
 def ledger_of(net: ProgressiveNet) -> NetworkCost:
     """Every task's costs and the whole network's, from the live modules."""
-    tasks = [task_cost(net, t) for t in net.tasks]
-    total = network_cost(net) if net.columns else PathCost(
+    tasks = [task_cost(net, t) for t in net.live_tasks]  # retired tasks cost nothing
+    total = network_cost(net) if net.live_tasks else PathCost(
         ParamCount(), 0, {"column": 0, "adapters": 0, "head": 0}, 0, "input")
     return NetworkCost(tasks, total, sum(t.path.macs for t in tasks))

@@ -125,7 +125,7 @@ def cost_network(net: ProgressiveNet, project_n: int = 0, width: float | None = 
         row.update(_path(t.path))
         row["latency_ms"] = _latency(measured.get(t.task))
         tasks.append(row)
-    total: dict[str, Any] = {"tasks": len(net.tasks), "columns": len(net.columns),
+    total: dict[str, Any] = {"tasks": len(net.live_tasks), "columns": len(net.columns),
                              "params": base.total.params.total,
                              "params_by_part": _params(base.total.params)}
     total.update(_path(base.total))

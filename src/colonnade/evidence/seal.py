@@ -148,6 +148,8 @@ def seal_task(net: ProgressiveNet, task: str, probe: Probe,
               batch_size: int = EVAL_BATCH) -> dict[str, Any]:
     """Seal ``task`` on ``probe``: record the entry, keep the reference logits, log it."""
     info = net.task(task)
+    if info.state != "live":
+        raise UsageError(f"task {task!r} is retired; a retired task is not sealed")
     if probe.x.shape[0] == 0:
         raise DataError(f"{probe.path}: the probe holds no samples")
     if probe.y.numel() != probe.x.shape[0]:

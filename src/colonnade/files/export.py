@@ -25,7 +25,7 @@ import torch.nn as nn
 
 from .._version import __version__
 from ..clock import now
-from ..errors import ColonnadeError, SealedError
+from ..errors import ColonnadeError, SealedError, UsageError
 from ..model.adapters import JointAdapter, LinearAdapter, NonlinearAdapter
 from ..model.digest import closure_digests
 from ..model.guard import closure_definition
@@ -159,6 +159,8 @@ def _seal_of(net: ProgressiveNet, task: str) -> dict[str, Any] | None:
 def standalone_blob(net: ProgressiveNet, task: str) -> dict[str, Any]:
     """The dictionary a standalone .pt file holds (see standalone.py)."""
     info = net.task(task)
+    if info.state != "live":
+        raise UsageError(f"task {task!r} is retired, so it is no longer exported")
     state = standalone_state(net, task)
     digest, _ = closure_digests(state)
     seal = _seal_of(net, task)

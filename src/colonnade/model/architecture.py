@@ -44,7 +44,8 @@ class ArchitectureRecord:
                                                   float(c["width"])))
             for t in arch["tasks"]:
                 info = TaskInfo(str(t["name"]), int(t["classes"]), int(t["column"]),
-                                str(t["mode"]), _class_names(t, int(t["classes"])))
+                                str(t["mode"]), _class_names(t, int(t["classes"])),
+                                state=str(t.get("state", "live")))
                 net.task_info[info.name] = info
                 net.heads[info.name] = nn.Linear(net.columns[info.column].out_features,
                                                  info.classes)

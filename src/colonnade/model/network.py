@@ -78,6 +78,11 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
 
     # ----------------------------------------------------------------- inspection
     @property
+    def live_tasks(self) -> list[str]:
+        """Tasks not retired, in growth order: what is predicted, exported and costed."""
+        return [t for t, info in self.task_info.items() if info.state == "live"]
+
+    @property
     def tasks(self) -> list[str]:
         """Task names in growth order."""
         return list(self.task_info)
@@ -264,10 +269,21 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
         return self.head_logits(task, outs)
 
     def forward_all(self, x: torch.Tensor) -> dict[str, torch.Tensor]:
-        """Every task's logits, computing each column once."""
+        """Every live task's logits, computing each column (as far as any of them reads
+        it) once; retired tasks are left out."""
         self._check_input(x)
-        outs = self.run_columns(x, range(len(self.columns)))
-        return {t: self.head_logits(t, outs) for t in self.task_info}
+        depths = self.live_depths()
+        outs = self.run_columns(x, sorted(depths), depths=depths)
+        return {t: self.head_logits(t, outs) for t in self.live_tasks}
+
+    def live_depths(self) -> dict[int, int]:
+        """Column -> leading blocks that some live task runs: what ``forward_all`` runs."""
+        depths: dict[int, int] = {}
+        for t in self.live_tasks:
+            c = self.closure(t)
+            for k in c.columns:
+                depths[k] = max(depths.get(k, 0), c.depth(k))
+        return depths
 
     # ----------------------------------------------------------------- train / freeze
     def train(self, mode: bool = True) -> ProgressiveNet:

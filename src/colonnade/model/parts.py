@@ -33,6 +33,7 @@ class TaskInfo:
     column: int
     mode: str  # "column": it grew its own column; "head": a head on an existing column
     class_names: list[str] | None = None  # names of classes 0..C-1, when the data had them
+    state: str = "live"  # "retired": no longer predicted, exported or costed; kept on record
 
     def class_name(self, index: int) -> str:
         """The name of class ``index`` (its number when the task has no names)."""

@@ -95,14 +95,14 @@ def task_logits(net: ProgressiveNet, task: str, x: torch.Tensor | Rows,
 @torch.no_grad()
 def all_task_logits(net: ProgressiveNet, x: torch.Tensor | Rows, batch_size: int = EVAL_BATCH,
                     ) -> dict[str, torch.Tensor]:
-    """Every task's logits on ``x`` through ``forward_all``: each column once per batch.
+    """Every live task's logits on ``x`` through ``forward_all``: each column once per batch.
 
     Batched like ``task_logits``, so each task's logits are bit-identical to it.
     """
     was_training = net.training
     net.eval()
     device = net.device
-    parts: dict[str, list[torch.Tensor]] = {t: [] for t in net.tasks}
+    parts: dict[str, list[torch.Tensor]] = {t: [] for t in net.live_tasks}
     try:
         for i in range(0, x.shape[0], batch_size):
             for t, logits in net.forward_all(x[i:i + batch_size].to(device)).items():
