@@ -63,6 +63,9 @@ def test_two_ranks_train_a_valid_workspace(sealed_workspace, tmp_path):
     x, y = torch.from_numpy(t1["x_test"]), torch.from_numpy(t1["y_test"])
     acc_ddp, _ = evaluate(colonnade.load(ddp_ws), "perm1", x, y)
     acc_one, _ = evaluate(colonnade.load(one_ws), "perm1", x, y)
+    # 0.9: test_digits' bar (measured here for one process). 0.01: two ranks see the same
+    # rows in other batches, so the runs differ; one point is our bound, measured here
+    # at well under it.
     assert acc_ddp >= 0.9
     assert abs(acc_ddp - acc_one) <= 0.01, (acc_ddp, acc_one)
 
