@@ -10,6 +10,7 @@ cleanly, so a failed or killed worker leaves the workspace exactly as before. La
 
 from __future__ import annotations
 
+import datetime
 import logging
 import os
 import tempfile
@@ -77,6 +78,16 @@ class GrowRequest:
     data: DataOptions = field(default_factory=lambda: DataOptions())
 
 
+# Seconds a collective may wait before the process group gives up (torch's default, 30
+# minutes, when unset): tests set it short so that a lost sync fails fast with a message.
+TIMEOUT_ENV = "COLONNADE_DIST_TIMEOUT_S"
+
+
+def _timeout() -> datetime.timedelta | None:
+    value = os.environ.get(TIMEOUT_ENV)
+    return datetime.timedelta(seconds=float(value)) if value else None
+
+
 def run_rank(rank: int, world: int, request: GrowRequest, staging: str | None,
              progress: bool = True) -> dict[str, Any] | None:
     """One rank's work: grow, train on its shard, and (rank 0) write the result."""
@@ -86,7 +97,7 @@ def run_rank(rank: int, world: int, request: GrowRequest, staging: str | None,
         device = torch.device("cuda", rank % torch.cuda.device_count())
         torch.cuda.set_device(device)
     if not dist.is_initialized():
-        dist.init_process_group(backend, rank=rank, world_size=world)
+        dist.init_process_group(backend, rank=rank, world_size=world, timeout=_timeout())
     try:
         net = load(request.folder)
         data = growth_data(net.spec, request.train, request.val, request.classes,
