@@ -135,7 +135,11 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
         if definition not in CLOSURE_DEFINITIONS:
             raise WorkspaceError(f"closure definition {definition!r} is not known to this "
                                  f"colonnade (it knows {list(CLOSURE_DEFINITIONS)})")
-        full = {k: len(col.blocks) for k, col in enumerate(self.columns)}
+        full = {k: len(col.plan.blocks) for k, col in enumerate(self.columns)}
+        # Only a column built from the template runs block by block; any other kind of
+        # column (an adopted model, say) runs whole, so it is in a closure whole or not at
+        # all.
+        whole = {k for k, col in enumerate(self.columns) if not isinstance(col, Column)}
         need: dict[int, int] = {info.column: full[info.column]}
         adapters: list[str] = []
         for key, _ in self._into_head.get(task, []):
@@ -147,7 +151,7 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
         for k in range(info.column, -1, -1):
             if k not in need:
                 continue
-            if definition == 1:
+            if definition == 1 or k in whole:
                 need[k] = full[k]
             for b in range(need[k]):
                 for key, _ in self._into.get((k, b), []):
