@@ -122,3 +122,35 @@ def test_retire_refuses_a_sealed_task(ws, tmp_path):
     seal_workspace(ws, "a", tmp_path / "a.npz")
     with pytest.raises(SealedError, match="cannot retire task 'a'"):
         retire_workspace(ws, "a", "closing")
+
+
+def test_a_retired_task_is_not_sealed(ws, tmp_path):
+    retire_workspace(ws, "b", "line closed")
+    with pytest.raises(UsageError, match="retired"):
+        seal_workspace(ws, "b", tmp_path / "b.npz")
+
+
+def test_fresh_retrain_starts_from_new_weights(ws, tmp_path, monkeypatch):
+    """With training itself taken out, ``--fresh`` must still have replaced every own
+    parameter, and a plain retrain none."""
+    from colonnade.training import lifecycle
+
+    class _Record:
+        epochs_run = 0
+
+        def to_dict(self):
+            return {}
+
+    monkeypatch.setattr(lifecycle, "fit_task", lambda *a, **k: _Record())
+    before = {k: v.clone() for k, v in load(ws).state_dict().items()}
+    retrain_workspace(ws, "b", tmp_path / "b2.npz", "same weights", progress=False)
+    after = load(ws).state_dict()
+    assert all(torch.equal(after[k], v) for k, v in before.items())
+    retrain_workspace(ws, "b", tmp_path / "b2.npz", "new weights", fresh=True, progress=False)
+    after = load(ws).state_dict()
+    own = [k for k in before if k.startswith(("heads.b.", "columns.1.", "adapters.c1_",
+                                              "adapters.h_b_"))
+           and before[k].is_floating_point() and "running" not in k]
+    assert own and all(not torch.equal(after[k], before[k]) for k in own)
+    others = [k for k in before if k.startswith(("heads.a.", "columns.0."))]
+    assert all(torch.equal(after[k], before[k]) for k in others)

@@ -276,9 +276,14 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
         """Every live task's logits, computing each column (as far as any of them reads
         it) once; retired tasks are left out."""
         self._check_input(x)
-        depths = self.live_depths()
-        outs = self.run_columns(x, sorted(depths), depths=depths)
-        return {t: self.head_logits(t, outs) for t in self.live_tasks}
+        live = self.live_tasks
+        if len(live) == len(self.task_info):
+            # Every column's own task is live and runs it whole: run every column whole.
+            outs = self.run_columns(x, range(len(self.columns)))
+        else:
+            depths = self.live_depths()
+            outs = self.run_columns(x, sorted(depths), depths=depths)
+        return {t: self.head_logits(t, outs) for t in live}
 
     def live_depths(self) -> dict[int, int]:
         """Column -> leading blocks that some live task runs: what ``forward_all`` runs."""
