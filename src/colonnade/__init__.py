@@ -32,6 +32,7 @@ _PUBLIC: dict[str, tuple[str, str | None]] = {
     "TaskData": ("colonnade.training.data", "TaskData"),
     "load_task_data": ("colonnade.training.data", "load_task_data"),
     "grow": ("colonnade.training.growth", "grow"),
+    "adopt": ("colonnade.app.adopt", "adopt"),
     "create": ("colonnade.files.store", "create"),
     "load": ("colonnade.files.store", "load"),
     "save": ("colonnade.files.store", "save"),

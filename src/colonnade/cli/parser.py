@@ -7,6 +7,7 @@ from collections.abc import Callable
 from typing import NoReturn
 
 from .._version import __version__
+from .adopt_cmds import add_parsers as add_adopt_verbs
 from .cost_cmds import add_parsers as add_cost_verbs
 from .diff_cmds import add_parsers as add_diff_verbs
 from .evidence_cmds import add_parsers as add_evidence_verbs
@@ -18,8 +19,8 @@ from .workspace_cmds import add_parsers as add_workspace_verbs
 __all__ = ["build_parser", "Parser", "short_usage"]
 
 # The verb groups, in the order of ``colonnade --help``.
-GROUPS = (add_workspace_verbs, add_evidence_verbs, add_export_verbs, add_cost_verbs,
-          add_trim_verbs, add_diff_verbs, add_lifecycle_verbs)
+GROUPS = (add_workspace_verbs, add_adopt_verbs, add_evidence_verbs, add_export_verbs,
+          add_cost_verbs, add_trim_verbs, add_diff_verbs, add_lifecycle_verbs)
 
 
 class Parser(argparse.ArgumentParser):

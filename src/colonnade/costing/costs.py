@@ -27,8 +27,10 @@ from dataclasses import dataclass, field
 
 import torch.nn as nn
 
+from ..model.adopted import AdoptedColumn
 from ..model.layers import Shape
 from ..model.network import ProgressiveNet
+from .adopted import adopted_cost
 from .module_costs import (
     VIEWS,
     adapter_macs,
@@ -59,7 +61,9 @@ ACTIVATION_RULE = ("peak activation memory: the largest total size of the tensor
                    "(a joint adapter first concatenates its sources), "
                    "then the heads); the input counts, every layer writes a new tensor "
                    "except flatten, dropout and identity (views), and a tensor is freed "
-                   "right after its last reader; returned logits stay alive to the end")
+                   "right after its last reader; returned logits stay alive to the end; an "
+                   "adopted column counts its input, its taps and its logits, not what it "
+                   "holds inside")
 
 def weight_bytes(elements: int) -> dict[str, int]:
     """Bytes of ``elements`` weights at each deployable dtype."""
@@ -101,6 +105,8 @@ def count_params(module: nn.Module, part: str) -> ParamCount:
     params = list(module.parameters())
     n = sum(p.numel() for p in params)
     trainable = sum(p.numel() for p in params if p.requires_grad)
+    if isinstance(module, AdoptedColumn):  # its model's own count, all frozen (costing.adopted)
+        n, trainable = adopted_cost(module).params, 0
     bufs = list(module.buffers())
     return ParamCount(**{part: n}, frozen=n - trainable, trainable=trainable,
                       buffers=sum(b.numel() for b in bufs),
@@ -181,6 +187,10 @@ def _trace(net: ProgressiveNet, columns: Iterable[int], heads: Iterable[str],
     outs: dict[int, list[tuple[int, Shape]]] = {}
     for k in sorted(columns):
         col = net.columns[k]
+        if isinstance(col, AdoptedColumn):  # one step: its taps and logits, from the input
+            outs[k] = [(tr.op(f"column {k} (adopted) output {i}", (x,), math.prod(b.out_shape)),
+                        b.out_shape) for i, b in enumerate(col.plan.blocks)]
+            continue
         h, shape = tr.layer(f"column {k} stem", col.stem, x, shape0)
         hs: list[tuple[int, Shape]] = []
         blocks = list(col.blocks)
@@ -189,7 +199,7 @@ def _trace(net: ProgressiveNet, columns: Iterable[int], heads: Iterable[str],
         for b, block in enumerate(blocks):
             z, zshape = tr.layer(f"column {k} block {b} weighted", block.weighted, h, shape)
             for key, _ in net.adapters_into_block(k, b):
-                a = _trace_adapter(tr, net, key, [outs[j][b - 1][0] for j in
+                a = _trace_adapter(tr, net, key, [outs[j][net.adapter_reads(key, b - 1)][0] for j in
                                                   net.adapter_sources(key)])
                 z = tr.op(f"column {k} block {b} lateral sum", (z, a), math.prod(zshape))
             h, shape = tr.layer(f"column {k} block {b} post", block.post, z, zshape)
@@ -197,10 +207,11 @@ def _trace(net: ProgressiveNet, columns: Iterable[int], heads: Iterable[str],
         outs[k] = hs
     for task in heads:
         col = net.task_info[task].column
-        h, shape = outs[col][-1]
+        h, shape = outs[col][net.head_reads(task)]
         logits, lshape = tr.layer(f"head {task}", net.heads[task], h, shape)
         for key, _ in net.adapters_into_head(task):
-            a = _trace_adapter(tr, net, key, [outs[j][-1][0] for j in net.adapter_sources(key)])
+            a = _trace_adapter(tr, net, key, [outs[j][net.adapter_reads(key, -1)][0]
+                                              for j in net.adapter_sources(key)])
             logits = tr.op(f"head {task} lateral sum", (logits, a), math.prod(lshape))
         tr.keep.add(logits)
     return tr
@@ -296,7 +307,13 @@ def _parts(net: ProgressiveNet, columns: Iterable[int], adapters: Iterable[str],
         yield f"adapter:{key}", net.adapters[key], module_macs(net.adapters[key], ())
     for name in heads:
         head = net.heads[name]
-        yield f"head:{name}", head, module_macs(head, (head.in_features,))
+        yield f"head:{name}", head, module_macs(head, _head_shape(net, name))
+
+
+def _head_shape(net: ProgressiveNet, task: str) -> Shape:
+    """What a task's head reads: its column's last output, or an adopted column's tap."""
+    col = net.columns[net.task_info[task].column]
+    return tuple(col.plan.blocks[net.head_reads(task)].out_shape)
 
 
 def _path(net: ProgressiveNet, columns: list[int], adapters: list[str], heads: list[str],

@@ -13,8 +13,10 @@ import math
 import torch.nn as nn
 
 from ..model.adapters import LateralAdapter, LinearAdapter, NonlinearAdapter
+from ..model.adopted import AdoptedColumn
 from ..model.layers import Shape
 from ..model.parts import Column
+from .adopted import adopted_cost
 
 __all__ = ["VIEWS", "adapter_steps", "module_output_shape", "layer_macs", "adapter_macs",
            "module_macs"]
@@ -68,6 +70,8 @@ def module_output_shape(module: nn.Module, shape: Shape) -> Shape:
         d = 1 if isinstance(module, nn.AdaptiveAvgPool1d) else 2
         size = _pair(module.output_size, d)
         return (shape[0], *(n if size[i] is None else size[i] for i, n in enumerate(shape[1:])))
+    if isinstance(module, nn.Upsample):  # a tap bridge (model.bridges): its size is set
+        return (shape[0], *_pair(module.size, len(shape) - 1))
     if isinstance(module, nn.Flatten):
         start = module.start_dim - 1 if module.start_dim > 0 else len(shape) + module.start_dim
         end = module.end_dim - 1 if module.end_dim > 0 else len(shape) + module.end_dim
@@ -102,11 +106,14 @@ def layer_macs(module: nn.Module, shape: Shape) -> int:
 
 
 def adapter_steps(adapter: nn.Module) -> list[tuple[str, nn.Module | None]]:
-    """The layers an adapter applies to its source, in order; None is the scalar scale."""
+    """The layers an adapter applies to its source, in order; None is the scalar scale.
+    An adapter reading an adopted column's tap first applies its shape bridge."""
+    bridge = [("bridge", adapter.bridge)] if getattr(adapter, "bridge", None) is not None else []
     if isinstance(adapter, NonlinearAdapter):
-        return [("alpha", None), ("V", adapter.V), ("act", adapter.act), ("U", adapter.U)]
+        return [*bridge, ("alpha", None), ("V", adapter.V), ("act", adapter.act),
+                ("U", adapter.U)]
     if isinstance(adapter, LinearAdapter):
-        return [("U", adapter.U)]
+        return [*bridge, ("U", adapter.U)]
     # Other kinds (for example the result of a merge) apply their children in order.
     return [(name, child) for name, child in adapter.named_children()]
 
@@ -127,6 +134,8 @@ def module_macs(module: nn.Module, shape: Shape, depth: int | None = None) -> in
     ``shape``)."""
     if isinstance(module, LateralAdapter):
         return adapter_macs(module)
+    if isinstance(module, AdoptedColumn):  # counted from the model itself (costing.adopted)
+        return adopted_cost(module).macs
     if isinstance(module, Column):
         total = layer_macs(module.stem, shape)
         shape = module_output_shape(module.stem, shape)

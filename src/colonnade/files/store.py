@@ -25,6 +25,7 @@ from safetensors.torch import save as st_save
 from .._version import __version__
 from ..clock import now
 from ..errors import ColonnadeError, WorkspaceError
+from ..model.adopted import ADOPTED_FILE, rebuild_adopted
 from ..model.guard import verify_unchanged
 from ..model.network import ProgressiveNet
 from ..model.schema import Spec
@@ -148,8 +149,10 @@ def save(net: ProgressiveNet, folder: str | Path) -> None:
     _commit(folder, files, manifest)
 
 
-def create(spec_or_path: Any, folder: str | Path) -> ProgressiveNet:
-    """Make a new, empty workspace from a spec (a Spec, a path, or plain data)."""
+def create(spec_or_path: Any, folder: str | Path, net: ProgressiveNet | None = None,
+           ) -> ProgressiveNet:
+    """Make a new workspace from a spec (a Spec, a path, or plain data), empty or, when
+    ``net`` is given (built on that spec, as by ``adopt``), holding ``net``."""
 
     if isinstance(spec_or_path, Spec):
         spec = spec_or_path
@@ -161,8 +164,9 @@ def create(spec_or_path: Any, folder: str | Path) -> ProgressiveNet:
     if folder.exists() and (not folder.is_dir() or any(folder.iterdir())):
         raise WorkspaceError(f"{folder}: exists and is not an empty folder; choose a new "
                              f"path or remove it first")
-    net = ProgressiveNet(spec)
-    net.meta["history"].append({"step": "created", "time": now()})
+    if net is None:
+        net = ProgressiveNet(spec)
+        net.meta["history"].append({"step": "created", "time": now()})
     made = not folder.exists()
     try:
         folder.mkdir(parents=True, exist_ok=True)
@@ -195,11 +199,13 @@ def _read_file(folder: Path, name: str, entry: Any, strict: bool) -> tuple[bytes
     return path.read_bytes(), False
 
 
-def load(folder: str | Path, strict: bool = True) -> ProgressiveNet:
+def load(folder: str | Path, strict: bool = True, module: Any = None) -> ProgressiveNet:
     """Load a workspace as a ProgressiveNet, frozen and in eval mode.
 
     ``strict=False`` loads files whose digest does not match the manifest (for checks
     that must name what changed) and lists them in ``net.meta['_mismatched']``.
+    ``module``: the user's own ``nn.Module`` when column 0 was adopted from Python code
+    (its weights are then loaded from the workspace into it).
     """
     folder = Path(folder)
     manifest = read_manifest(folder)
@@ -207,7 +213,6 @@ def load(folder: str | Path, strict: bool = True) -> ProgressiveNet:
         spec = parse_spec(manifest.get("spec"))
     except ColonnadeError as exc:
         raise WorkspaceError(f"{folder / MANIFEST}: its spec is invalid ({exc})") from None
-    net = ProgressiveNet.from_architecture(spec, manifest.get("network") or {})
     files = manifest.get("files") or {}
     if WEIGHTS not in files:
         raise WorkspaceError(f"{folder / MANIFEST}: lists no {WEIGHTS}; restore it from a "
@@ -223,6 +228,13 @@ def load(folder: str | Path, strict: bool = True) -> ProgressiveNet:
         except (SafetensorError, ValueError, RuntimeError):
             raise WorkspaceError(f"{folder / name}: not a readable safetensors file; restore "
                                  f"it from a backup") from None
+    arch = manifest.get("network") or {}
+    adopted = None
+    if isinstance(arch, dict) and "adopted" in arch:
+        stored = tensors.get(ADOPTED_FILE, {}).get("model")
+        data = None if stored is None else stored.numpy().tobytes()
+        adopted = rebuild_adopted(arch["adopted"], data, module)
+    net = ProgressiveNet.from_architecture(spec, arch, adopted)
     try:
         net.load_state_dict(tensors.pop(WEIGHTS), strict=True)
     except RuntimeError as exc:

@@ -22,7 +22,7 @@ def network_summary(net: ProgressiveNet) -> dict[str, Any]:
     for name in net.task_info:
         tasks[name] = {"closure_columns": list(net.closure(name).columns),
                        "params_path": task_cost(net, name).path.params.total}
-    columns = {str(c.index): sum(p.numel() for p in net.columns[c.index].parameters())
+    columns = {str(c.index): count_params(net.columns[c.index], "column").total
                for c in net.column_info}
     adapters = {key: sum(p.numel() for p in net.adapters[key].parameters())
                 if key in net.adapters else 0 for key in net.adapter_info}

@@ -47,14 +47,20 @@ def _pointwise(target: LayerSpec, in_channels: int, out_channels: int) -> nn.Mod
 
 
 class LateralAdapter(nn.Module):
-    """Common base: records source and target shapes for accounting and display."""
+    """Common base: records source and target shapes for accounting and display.
+
+    ``bridge`` (None unless the source is a tap of an adopted column, model.bridges)
+    reshapes the source before the adapter's maps: pooling, flattening or resampling.
+    """
 
     kind = "lateral"
 
-    def __init__(self, source_shape: Shape, target_shape: Shape) -> None:
+    def __init__(self, source_shape: Shape, target_shape: Shape,
+                 bridge: nn.Module | None = None) -> None:
         super().__init__()
         self.source_shape = tuple(source_shape)
         self.target_shape = tuple(target_shape)
+        self.bridge = bridge
 
     def extra_repr(self) -> str:
         return f"{list(self.source_shape)} -> {list(self.target_shape)}"
@@ -65,14 +71,18 @@ class LinearAdapter(LateralAdapter):
 
     kind = "linear"
 
-    def __init__(self, source_shape: Shape, target_shape: Shape, target: LayerSpec) -> None:
-        super().__init__(source_shape, target_shape)
-        self.U = _target_map(target, source_shape[0], target_shape[0])
+    def __init__(self, source_shape: Shape, target_shape: Shape, target: LayerSpec,
+                 bridge: nn.Module | None = None, bridged_shape: Shape | None = None) -> None:
+        super().__init__(source_shape, target_shape, bridge)
+        features = (bridged_shape or source_shape)[0]
+        self.U = _target_map(target, features, target_shape[0])
 
     def forward(self, h: torch.Tensor) -> torch.Tensor:
         # Inner layers run through .forward: the same operations without a second module
         # dispatch per adapter (it shows at batch 1, benchmarks/run.py); hooks belong on
         # the adapter itself, where usage.py and merge.py put them.
+        if self.bridge is not None:
+            h = self.bridge(h)
         return self.U.forward(h)
 
 
@@ -82,13 +92,15 @@ class NonlinearAdapter(LateralAdapter):
     kind = "nonlinear"
 
     def __init__(self, source_shape: Shape, target_shape: Shape, target: LayerSpec,
-                 reduce: float = 0.5, activation: str = "relu") -> None:
-        super().__init__(source_shape, target_shape)
-        self.rank = max(1, int(round(source_shape[0] * reduce)))
+                 reduce: float = 0.5, activation: str = "relu",
+                 bridge: nn.Module | None = None, bridged_shape: Shape | None = None) -> None:
+        super().__init__(source_shape, target_shape, bridge)
+        features = (bridged_shape or source_shape)[0]
+        self.rank = max(1, int(round(features * reduce)))
         self.activation_name = activation
         # alpha starts at 1 so the adapter begins as a plain two-layer map (our choice).
         self.alpha = nn.Parameter(torch.ones(()))
-        self.V = _pointwise(target, source_shape[0], self.rank)
+        self.V = _pointwise(target, features, self.rank)
         self.act = make_activation(activation)
         self.U = _target_map(target, self.rank, target_shape[0])
 
@@ -98,6 +110,8 @@ class NonlinearAdapter(LateralAdapter):
         self.U.reset_parameters()
 
     def forward(self, h: torch.Tensor) -> torch.Tensor:
+        if self.bridge is not None:
+            h = self.bridge(h)
         return self.U.forward(self.act.forward(self.V.forward(self.alpha * h)))  # see above
 
     def extra_repr(self) -> str:
@@ -138,10 +152,13 @@ def rebuild_joint(net, info) -> JointAdapter:  # noqa: ANN001 (a ProgressiveNet,
 
 
 def make_adapter(kind: str, source_shape: Shape, target_shape: Shape, target: LayerSpec,
-                 reduce: float = 0.5, activation: str = "relu") -> LateralAdapter:
+                 reduce: float = 0.5, activation: str = "relu",
+                 bridge: nn.Module | None = None, bridged_shape: Shape | None = None,
+                 ) -> LateralAdapter:
     """The one factory from the spec's lateral kind to an adapter module."""
     if kind == "linear":
-        return LinearAdapter(source_shape, target_shape, target)
+        return LinearAdapter(source_shape, target_shape, target, bridge, bridged_shape)
     if kind == "nonlinear":
-        return NonlinearAdapter(source_shape, target_shape, target, reduce, activation)
+        return NonlinearAdapter(source_shape, target_shape, target, reduce, activation,
+                                bridge, bridged_shape)
     raise ValueError(f"no adapter of kind {kind!r}")

@@ -16,6 +16,7 @@ import torch.nn as nn
 from ..errors import WorkspaceError
 from . import adapters as adapter_kinds
 from .adapters import LateralAdapter
+from .adopted import AdoptedColumn
 from .parts import AdapterInfo, Column, ColumnInfo, TaskInfo
 from .schema import Spec
 
@@ -27,19 +28,33 @@ class ArchitectureRecord:
 
     def architecture(self) -> dict[str, Any]:
         """Everything needed to rebuild the modules, as plain data for the manifest."""
-        return {
+        arch = {
             "tasks": [_task_record(t) for t in self.task_info.values()],
             "columns": [asdict(c) for c in self.column_info],
             "adapters": [asdict(a) for a in self.adapter_info.values()],
         }
+        if self.adopted is not None:
+            arch["adopted"] = self.adopted.record.to_dict()
+        return arch
 
     @classmethod
-    def from_architecture(cls, spec: Spec, arch: dict[str, Any]) -> Any:
-        """Rebuild the modules (weights uninitialised in meaning) from ``architecture()``."""
+    def from_architecture(cls, spec: Spec, arch: dict[str, Any],
+                          adopted: AdoptedColumn | None = None) -> Any:
+        """Rebuild the modules (weights uninitialised in meaning) from ``architecture()``.
+
+        ``adopted`` is column 0 when the architecture has one (``arch['adopted']``),
+        rebuilt by the caller from its file (model.adopted.rebuild_adopted).
+        """
         net = cls(spec)
+        if ("adopted" in arch) != (adopted is not None):
+            raise WorkspaceError("the manifest's adopted column and the model given for it "
+                                 "do not match; restore the manifest from a backup")
         try:
             for c in arch["columns"]:
-                net.columns.append(Column(spec, float(c["width"])))
+                if adopted is not None and int(c["index"]) == 0:
+                    net.columns.append(adopted)
+                else:
+                    net.columns.append(Column(spec, float(c["width"])))
                 net.column_info.append(ColumnInfo(int(c["index"]), str(c["task"]),
                                                   float(c["width"])))
             for t in arch["tasks"]:
@@ -47,8 +62,8 @@ class ArchitectureRecord:
                                 str(t["mode"]), _class_names(t, int(t["classes"])),
                                 state=str(t.get("state", "live")))
                 net.task_info[info.name] = info
-                net.heads[info.name] = nn.Linear(net.columns[info.column].out_features,
-                                                 info.classes)
+                net.heads[info.name] = (nn.Identity() if info.mode == "adopted"
+                                        else net._make_head(info.column, info.classes))
             for a in arch["adapters"]:
                 info = AdapterInfo(**a)
                 net.adapter_info[info.key] = info
@@ -71,7 +86,11 @@ class ArchitectureRecord:
         if info.head is not None:
             classes = self.task_info[info.head].classes
             return self._head_adapter(info.head, classes, info.source, info.kind)[1]
-        return self._block_adapter(info.column, info.block, info.source, info.kind)[1]
+        made = self._block_adapter(info.column, info.block, info.source, info.kind,
+                                   info.extra.get("tap"))
+        if made is None:
+            raise ValueError(f"adapter {info.key} reads no tap of the adopted column")
+        return made[1]
 
 
 def _task_record(task: TaskInfo) -> dict[str, Any]:

@@ -20,6 +20,8 @@ import torch.nn as nn
 
 from ..errors import DataError, SealedError, UsageError, WorkspaceError
 from .adapters import LateralAdapter, make_adapter
+from .adopted import AdoptedColumn
+from .adoption import AdoptionMixin
 from .architecture import ArchitectureRecord
 from .guard import guard, guard_state, is_sealed
 from .layers import Shape, check_width
@@ -43,7 +45,7 @@ __all__ = ["ProgressiveNet", "Column", "Block", "TaskInfo", "ColumnInfo", "Adapt
 TASK_NAME = re.compile(r"^[A-Za-z][A-Za-z0-9_-]{0,63}$")
 
 
-class ProgressiveNet(ArchitectureRecord, nn.Module):
+class ProgressiveNet(ArchitectureRecord, AdoptionMixin, nn.Module):
     """A progressive network grown one column or head per task.
 
     ``net(x, task=NAME)`` returns that task's logits; ``forward_all(x)`` every task's,
@@ -75,6 +77,7 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
         self._into: dict[tuple[int, int], list[tuple[str, int]]] = {}
         self._into_head: dict[str, list[tuple[str, int]]] = {}
         self._sources: dict[str, tuple[int, ...]] = {}  # live adapter -> columns it reads
+        self._tap_index: dict[str, int] = {}  # adapter reading an adopted tap -> its output
 
     # ----------------------------------------------------------------- inspection
     @property
@@ -158,6 +161,9 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
                     adapters.append(key)
                     for j in self._sources[key]:
                         need[j] = max(need.get(j, 0), b)  # reads block b-1: blocks 0..b-1
+        for k in need:  # an adopted model runs whole, whichever of its taps is read
+            if isinstance(self.columns[k], AdoptedColumn):
+                need[k] = full[k]
         columns = tuple(sorted(k for k, d in need.items() if d > 0 or k == info.column))
         return Closure(task, columns, tuple(sorted(adapters)), task,
                        {k: need[k] for k in columns}, {k: full[k] for k in columns},
@@ -221,6 +227,9 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
             if k in outs:
                 continue
             col = self.columns[k]
+            if isinstance(col, AdoptedColumn):
+                outs[k] = col(x)  # [tap_1, ..., tap_n, logits] (model.adoption)
+                continue
             # The stem's and post's layers are called one by one rather than through their
             # nn.Sequential: the same operations, fewer module calls for small batches.
             h = x
@@ -242,7 +251,7 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
 
     def head_logits(self, task: str, outs: dict[int, list[torch.Tensor]]) -> torch.Tensor:
         info = self.task_info[task]
-        logits = self.heads[task](outs[info.column][-1])
+        logits = self.heads[task](outs[info.column][self._head_input(info)])
         for key, _ in self._into_head.get(task, []):
             logits = logits + self._lateral(key, outs, -1)
         return logits
@@ -251,6 +260,7 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
                  ) -> torch.Tensor:
         """One adapter's output; a joint adapter reads its sources concatenated."""
         sources = self._sources[key]
+        index = self.adapter_reads(key, index)
         if len(sources) == 1:
             return self.adapters[key](outs[sources[0]][index])
         return self.adapters[key](torch.cat([outs[s][index] for s in sources], dim=1))
@@ -391,10 +401,13 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
         into: dict[tuple[int, int], list[tuple[str, int]]] = {}
         into_head: dict[str, list[tuple[str, int]]] = {}
         sources: dict[str, tuple[int, ...]] = {}
+        taps: dict[str, int] = {}
         for key, info in self.adapter_info.items():
             if info.state != "live" or key not in self.adapters:
                 continue
             sources[key] = info.sources
+            if "tap" in info.extra:
+                taps[key] = int(info.extra["tap"])
             if info.head is not None:
                 into_head.setdefault(info.head, []).append((key, info.source))
             else:
@@ -403,11 +416,16 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
             for lst in targets.values():
                 lst.sort(key=lambda item: (item[1], item[0]))
         self._into, self._into_head, self._sources = into, into_head, sources
+        self._tap_index = taps
 
     def _block_adapter(self, k: int, b: int, j: int, kind: str | None = None,
-                       ) -> tuple[AdapterInfo, LateralAdapter]:
+                       tap: int | None = None) -> tuple[AdapterInfo, LateralAdapter] | None:
+        """The adapter from column ``j`` into block ``b`` of column ``k``; None when ``j``
+        is an adopted column and no tap feeds that block (model.bridges)."""
         lat = self.spec.lateral
         kind = kind or lat.kind
+        if isinstance(self.columns[j], AdoptedColumn):
+            return self._tap_block_adapter(k, b, kind, tap)
         src, dst = self.columns[j].plan.blocks[b - 1], self.columns[k].plan.blocks[b]
         module = make_adapter(kind, src.out_shape, dst.pre_shape, dst.weighted,
                               lat.reduce, lat.activation)
@@ -417,6 +435,8 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
                       ) -> tuple[AdapterInfo, LateralAdapter]:
         lat = self.spec.lateral
         kind = kind or lat.kind
+        if isinstance(self.columns[j], AdoptedColumn):
+            return self._tap_head_adapter(task, classes, kind)
         src = self.columns[j].plan.out_shape
         module = make_adapter(kind, src, (classes,), Dense(dense=classes), lat.reduce,
                               lat.activation)
@@ -424,7 +444,7 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
 
     def _add_head(self, name: str, classes: int, column: int, mode: str,
                   class_names: list[str] | None = None) -> list[str]:
-        self.heads[name] = nn.Linear(self.columns[column].out_features, classes)
+        self.heads[name] = self._make_head(column, classes)
         self.task_info[name] = TaskInfo(name, classes, column, mode, class_names)
         parts = [f"head:{name}"]
         if self.spec.lateral.kind != "none":
@@ -456,7 +476,10 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
             if self.spec.lateral.kind != "none":
                 for b in range(1, len(self.columns[k].blocks)):
                     for j in range(k):
-                        info, module = self._block_adapter(k, b, j)
+                        made = self._block_adapter(k, b, j)
+                        if made is None:  # an adopted column with no tap for block b
+                            continue
+                        info, module = made
                         self._register_adapter(info, module)
                         parts.append(f"adapter:{info.key}")
             parts += self._add_head(name, classes, k, "column", class_names)
@@ -519,8 +542,8 @@ class ProgressiveNet(ArchitectureRecord, nn.Module):
 
     def remove_task(self, name: str) -> None:
         """Undo the newest growth step (used to roll back a failed grow)."""
-        if not self.tasks or self.tasks[-1] != name:
-            raise UsageError(f"only the newest task can be removed, not {name!r}")
+        if not self.tasks or self.tasks[-1] != name or self.task_info[name].mode == "adopted":
+            raise UsageError(f"only the newest grown task can be removed, not {name!r}")
         guard(self, [f"head:{name}"], "remove")
         info = self.task_info.pop(name)
         del self.heads[name]

@@ -222,12 +222,28 @@ LAYER_KINDS: dict[str, type[_Strict]] = {
 }
 
 
+def _tap_map(v: Any) -> dict[int, str] | None:
+    if v is None:
+        return None
+    if not isinstance(v, dict) or not v or not all(
+            _is_int(k) and k >= 1 and isinstance(t, str) and t for k, t in v.items()):
+        raise _fail("taps", "a mapping of block numbers (1 or more) to tap names, "
+                            "such as {1: layer2, 2: layer3}", v)
+    return dict(v)
+
+
 class LateralSpec(_Strict):
-    """How earlier columns feed a new one (Rusu et al. 2016, Eq. 1 linear, Eq. 2 nonlinear)."""
+    """How earlier columns feed a new one (Rusu et al. 2016, Eq. 1 linear, Eq. 2 nonlinear).
+
+    ``taps`` and ``bridge`` apply to an adopted column 0 only (model.bridges): which
+    block reads which tap, and how a tap with positions feeds a dense block.
+    """
 
     kind: Annotated[str, BeforeValidator(_choice("none", "linear", "nonlinear"))] = "nonlinear"
     reduce: Fraction = 0.5
     activation: Annotated[str, BeforeValidator(_choice(*ACTIVATIONS))] = "relu"
+    taps: Annotated[dict[int, str] | None, BeforeValidator(_tap_map)] = None
+    bridge: Annotated[str, BeforeValidator(_choice("pool", "flatten"))] = "pool"
 
 
 class TrainSpec(_Strict):
@@ -320,7 +336,8 @@ class Spec(_Strict):
             "name": self.name,
             "input": self.input_dict(),
             "column": [layer.model_dump(exclude_none=True) for layer in self.column],
-            "lateral": self.lateral.model_dump(),
+            "lateral": {k: v for k, v in self.lateral.model_dump().items()
+                        if not (k == "taps" and v is None or k == "bridge" and v == "pool")},
             "train": {k: (list(v) if isinstance(v, tuple) else v)
                       for k, v in self.train.model_dump(exclude_none=True).items()},
         }

@@ -67,13 +67,14 @@ def needed_outputs(net: ProgressiveNet, task: str) -> dict[int, tuple[int, ...]]
             for key, _ in net.adapters_into_block(k, b):
                 for j in net.adapter_sources(key):  # several for a joint adapter
                     if j in constant:
-                        needed.setdefault(j, set()).add(b - 1)
+                        needed.setdefault(j, set()).add(net.adapter_reads(key, b - 1))
     info = net.task(task)
-    readers = [info.column] + [j for key, _ in net.adapters_into_head(task)
-                               for j in net.adapter_sources(key)]
-    for j in readers:
+    readers = [(info.column, net.head_reads(task))] + [
+        (j, net.adapter_reads(key, len(net.columns[j].blocks) - 1))
+        for key, _ in net.adapters_into_head(task) for j in net.adapter_sources(key)]
+    for j, index in readers:
         if j in constant:
-            needed.setdefault(j, set()).add(len(net.columns[j].blocks) - 1)
+            needed.setdefault(j, set()).add(index)
     return {k: tuple(sorted(v)) for k, v in sorted(needed.items())}
 
 

@@ -110,6 +110,8 @@ def lateral_style(kind: str | list[str], state: str, live: bool, faded: bool,
 # ----------------------------------------------------------------------------- pieces
 def title_of(G: nx.DiGraph, net: ProgressiveNet, task: str | None, compact: bool) -> str:
     params = sum(p.numel() for p in net.parameters())
+    if net.adopted is not None and net.adopted.model is None:  # a .pt2 or .onnx file
+        params += G.nodes["c0_model"]["params"]
     macs = sum(d.get("macs", 0) for _n, d in G.nodes(data=True))
     macs += sum(d.get("macs", 0) for _u, _v, d in G.edges(data=True))
     n = len(net.tasks)

@@ -21,7 +21,9 @@ from typing import Any
 import networkx as nx
 import torch.nn as nn
 
+from ..costing.adopted import adopted_cost
 from ..costing.costs import layer_macs, module_macs
+from ..model.adopted import AdoptedColumn
 from ..model.guard import sealed_parts, sealed_tasks
 from ..model.layers import layer_output_shape
 from ..model.network import ProgressiveNet
@@ -167,6 +169,34 @@ def _module(net: ProgressiveNet, dotted: str) -> nn.Module | None:
         return None
 
 
+def _add_adopted(G: nx.DiGraph, net: ProgressiveNet, col: AdoptedColumn, task: str,
+                 state: dict[str, Any]) -> dict[int, str]:
+    """An adopted column as one labelled box (the model) and one node per tap.
+
+    Returns output index -> node: the taps in order, then the model (its logits)."""
+    record, cost = col.record, adopted_cost(col)
+    model = "c0_model"
+    G.add_node(model, kind="layer", part="column:0", module="columns.0", column=0, task=task,
+               block=None, position=0, template=None, op="adopted", adopted=True,
+               label=f"adopted {record.format} model ({record.runtime} "
+                     f"{record.runtime_version})",
+               weighted=True, in_shape=list(record.input), out_shape=[record.classes],
+               params=cost.params, buffers=0, macs=cost.macs, macs_source=cost.source,
+               **state)
+    G.add_edge(INPUT, model, role="forward", kind="forward", shape=list(record.input))
+    ends = {}
+    for i, (tap, shape) in enumerate(zip(record.taps, record.tap_shapes, strict=True)):
+        node = f"c0_t{i}"
+        G.add_node(node, kind="layer", part="column:0", module="columns.0", column=0,
+                   task=task, block=i, position=0, template=None, op="tap", adopted=True,
+                   label=f"tap {tap}", weighted=False, in_shape=list(shape),
+                   out_shape=list(shape), params=0, buffers=0, macs=0, **state)
+        G.add_edge(model, node, role="forward", kind="forward", shape=list(shape))
+        ends[i] = node
+    ends[len(record.taps)] = model
+    return ends
+
+
 def build_graph(net: ProgressiveNet) -> nx.DiGraph:
     """The network as a DiGraph: input, column layers and heads; forward and lateral edges.
 
@@ -200,6 +230,10 @@ def build_graph(net: ProgressiveNet) -> nx.DiGraph:
     last: dict[int, str] = {}
     for k, info in enumerate(net.column_info):
         part = f"column:{k}"
+        if isinstance(net.columns[k], AdoptedColumn):
+            ends[k] = _add_adopted(G, net, net.columns[k], info.task, state_of(part))
+            last[k] = ends[k][len(ends[k]) - 1]
+            continue
         layers = _column_layers(net, k)
         ends[k] = _block_ends(layers)
         prev = INPUT
@@ -221,14 +255,15 @@ def build_graph(net: ProgressiveNet) -> nx.DiGraph:
         part = f"head:{name}"
         params, buffers = _count(net.heads[name])
         node = f"head_{name}"
+        reads = net.head_reads(name)
+        shape = list(net.columns[t.column].plan.blocks[reads].out_shape)
         G.add_node(node, kind="head", part=part, module=f"heads.{name}", column=t.column,
                    task=name, mode=t.mode, classes=t.classes, label=f"head {name}",
-                   op="dense", in_shape=[net.columns[t.column].out_features],
+                   op="identity" if t.mode == "adopted" else "dense", in_shape=shape,
                    out_shape=[t.classes], params=params, buffers=buffers,
-                   macs=layer_macs(net.heads[name], (net.columns[t.column].out_features,)),
-                   **state_of(part))
-        G.add_edge(last[t.column], node, role="forward", kind="forward",
-                   shape=[net.columns[t.column].out_features])
+                   macs=layer_macs(net.heads[name], tuple(shape)), **state_of(part))
+        G.add_edge(ends[t.column][reads] if t.column in ends and reads in ends[t.column]
+                   else last[t.column], node, role="forward", kind="forward", shape=shape)
     for key, a in net.adapter_info.items():
         module = net.adapters[key] if key in net.adapters else None
         params, _ = _count(module)
@@ -242,10 +277,12 @@ def build_graph(net: ProgressiveNet) -> nx.DiGraph:
         G.graph["adapters"][key] = dict(figures)
         sources = _sources(net, key)
         for n, j in enumerate(sources):
+            tap = a.extra.get("tap") if isinstance(a.extra, dict) else None
             if a.head is not None:
-                u, v = last[j], f"head_{a.head}"
+                u, v = (last[j] if tap is None else ends[j][tap]), f"head_{a.head}"
             else:
-                u, v = ends[j][a.block - 1], f"c{a.column}_b{a.block}_0"
+                u = ends[j][a.block - 1 if tap is None else tap]
+                v = f"c{a.column}_b{a.block}_0"
             attrs = {"role": "lateral", "key": key, "part": part, "module": f"adapters.{key}",
                      **figures, "replaces": []}
             if n > 0:

@@ -1,0 +1,136 @@
+"""``adopt``: a model the user already has becomes column 0 of a new workspace.
+
+One transaction: read the model and the spec, build the adopted column, prove on the
+probe that its task's logits are bit-identical to the original model's run alone, record
+what was adopted (file digest, runtime and version, taps, the proof), optionally seal the
+task, and only then create the workspace. Any refusal leaves nothing on disk.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import torch
+import torch.nn as nn
+
+from ..clock import now
+from ..errors import DataError, SpecError, UsageError, WorkspaceError
+from ..evidence.adoption import prove_adoption
+from ..evidence.seal import Probe, load_probe, seal_task
+from ..files.store import create
+from ..model.adopted import AdoptedColumn, adopt_exported, adopt_module, adopt_onnx
+from ..model.digest import bytes_digest, raw_bytes
+from ..model.network import ProgressiveNet
+from ..model.schema import Spec
+from ..model.spec import load_spec, parse_spec
+
+__all__ = ["adopt", "adopt_workspace", "MODEL_FORMATS"]
+
+MODEL_FORMATS = {".pt2": "a torch.export program", ".onnx": "an ONNX model"}
+
+
+def _spec(spec: Any) -> Spec:
+    if isinstance(spec, Spec):
+        return spec
+    if isinstance(spec, dict):
+        return parse_spec(spec)
+    if spec is None:
+        raise UsageError("adopt needs a spec (--spec FILE) describing the columns grown later")
+    return load_spec(spec)
+
+
+def _read_model(path: str | Path) -> tuple[bytes, str]:
+    path = Path(path)
+    suffix = path.suffix.lower()
+    if suffix not in MODEL_FORMATS:
+        raise UsageError(f"{path}: adopt reads a torch.export program (.pt2) or an ONNX model "
+                         f"(.onnx); from Python, pass the nn.Module itself")
+    try:
+        return path.read_bytes(), suffix
+    except FileNotFoundError:
+        raise DataError(f"{path}: no such model file") from None
+    except OSError as exc:
+        raise DataError(f"{path}: cannot read the model file ({exc.strerror})") from None
+
+
+def _column(model: Any, spec: Spec, taps: Sequence[str], input_shape: Sequence[int] | None,
+            ) -> tuple[AdoptedColumn, Callable[[torch.Tensor], torch.Tensor], str]:
+    """The adopted column, the original model to run alone, and a name for messages."""
+    shape = tuple(spec.input)
+    if input_shape is not None and tuple(int(n) for n in input_shape) != shape:
+        raise SpecError(f"input: the spec's input {list(shape)} differs from the model's "
+                        f"input shape {list(input_shape)}; make them equal")
+    if isinstance(model, nn.Module):
+        column, original = adopt_module(model, shape, list(taps))
+        return column, original, "the model"
+    data, suffix = _read_model(model)
+    if suffix == ".pt2":
+        column, original = adopt_exported(data, shape, list(taps), str(model))
+    else:
+        column, original = adopt_onnx(data, shape, list(taps), str(model))
+    return column, original, str(model)
+
+
+def _probe(probe: Any, net: ProgressiveNet, task: str, folder: str | Path | None) -> Probe:
+    if isinstance(probe, (tuple, list)) and len(probe) == 2:
+        x = torch.as_tensor(np.asarray(probe[0]), dtype=torch.float32)
+        y = torch.as_tensor(np.asarray(probe[1]), dtype=torch.int64)
+        digest = bytes_digest(raw_bytes(x) + raw_bytes(y))
+        return Probe(x, y, digest, "(in memory)")
+    return load_probe(probe, net, task, relative_to=folder)
+
+
+def adopt(model: Any, input_shape: Sequence[int] | None = None, task: str = "adopted",
+          taps: Sequence[str] = (), spec: Any = None, probe: Any = None,
+          folder: str | Path | None = None) -> ProgressiveNet:
+    """A network whose column 0 is ``model``, frozen, and whose task ``task`` is its output.
+
+    ``model`` is an ``nn.Module`` (with its weights loaded) or the path of a ``.pt2`` or
+    ``.onnx`` file; ``taps`` name the intermediate outputs later columns may read; ``spec``
+    describes the columns grown later (its input must equal the model's). With ``probe``
+    (a labelled data file, or ``(x, y)`` arrays) the adopted task's logits are proven
+    bit-identical to the model's own on it, and the proof is recorded in the history.
+    Nothing is written; save with ``colonnade.save`` or use ``adopt_workspace``.
+    """
+    spec = _spec(spec)
+    column, original, _ = _column(model, spec, taps, input_shape)
+    net = ProgressiveNet(spec)
+    net.adopt(column, task)
+    record = column.record
+    entry: dict[str, Any] = {"step": "model_adopted", "task": task, "time": now(),
+                             "format": record.format, "runtime": record.runtime,
+                             "runtime_version": record.runtime_version,
+                             "sha256": record.sha256, "taps": list(record.taps),
+                             "classes": record.classes}
+    if probe is not None:
+        loaded = _probe(probe, net, task, folder)
+        entry["probe"] = {"path": loaded.path, "sha256": loaded.sha256,
+                          "samples": int(loaded.x.shape[0])}
+        entry["proof"] = prove_adoption(net, task, original, loaded.x)
+        net.meta["_probe"] = loaded  # in memory only: for sealing in the same step
+    net.meta["history"] += [{"step": "created", "time": entry["time"]}, entry]
+    return net
+
+
+def adopt_workspace(model: Any, folder: str | Path, task: str, taps: Sequence[str],
+                    spec: Any, probe: Any, seal: bool = False,
+                    input_shape: Sequence[int] | None = None) -> dict[str, Any]:
+    """``colonnade adopt``: prove, optionally seal, then create the workspace ``folder``."""
+    folder = Path(folder)
+    if folder.exists() and (not folder.is_dir() or any(folder.iterdir())):
+        raise WorkspaceError(f"{folder}: exists and is not an empty folder; choose a new "
+                             f"path or remove it first")
+    if probe is None:
+        raise UsageError("adopt needs a labelled probe (--probe FILE) to prove that the "
+                         "adopted model's outputs did not change")
+    net = adopt(model, input_shape, task, taps, spec, probe, folder)
+    loaded = net.meta.pop("_probe")
+    entry = net.meta["history"][-1]
+    sealed = seal_task(net, task, loaded) if seal else None
+    create(net.spec, folder, net)
+    return {"task": task, "workspace": str(folder), "adopted": net.adopted.record.to_dict(),
+            "proof": entry["proof"], "probe": entry["probe"],
+            "seal": None if sealed is None else sealed["version"]}

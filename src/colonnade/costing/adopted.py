@@ -1,0 +1,109 @@
+"""What an adopted column costs: parameters and MACs of a model colonnade did not build.
+
+An adopted model is not made of the template's layers, so its figures come from the
+model itself, each from a named source:
+
+* torch models (a Python module or a ``.pt2`` program): MACs are counted by
+  ``torch.utils.flop_counter.FlopCounterMode`` over one forward pass of one zero sample
+  (FLOPs / 2; it counts matrix products and convolutions, the same rule as ``costs.py``);
+  parameters are the ``numel`` of the module's parameters.
+* ONNX models: MACs are counted from the graph's shapes after ``onnx.shape_inference``
+  with the batch pinned to 1: Conv (output elements x input channels per group x kernel
+  elements), Gemm (M x N x K) and MatMul (output elements x the reduced dimension); every
+  other operator counts none, as FlopCounterMode does. Parameters are the elements of
+  the graph's floating-point initializers.
+
+Figures are computed once per column and kept on it.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Any
+
+import torch
+from torch.utils.flop_counter import FlopCounterMode
+
+from ..model.adopted import AdoptedColumn
+
+__all__ = ["AdoptedCost", "adopted_cost", "onnx_graph_macs"]
+
+SOURCES = {"torch": "torch.utils.flop_counter.FlopCounterMode (one forward pass, batch 1)",
+           "onnxruntime": "the ONNX graph's shapes (onnx.shape_inference, batch 1)"}
+
+
+@dataclass(frozen=True)
+class AdoptedCost:
+    """Per-sample MACs and parameter count of an adopted column, and where they come from."""
+
+    macs: int
+    params: int
+    source: str
+
+
+def _torch_cost(column: AdoptedColumn) -> tuple[int, int]:
+    x = torch.zeros(1, *column.record.input)
+    counter = FlopCounterMode(display=False)
+    with counter, torch.no_grad():
+        column(x)
+    module = column._runner[0].module
+    return counter.get_total_flops() // 2, sum(p.numel() for p in module.parameters())
+
+
+def _pinned(model: Any, input_shape: tuple[int, ...]) -> Any:
+    """A copy of the model with its input's sizes fixed: batch 1, then the sample shape."""
+    import onnx
+
+    pinned = onnx.ModelProto()
+    pinned.CopyFrom(model)
+    inits = {i.name for i in pinned.graph.initializer}
+    value = next(i for i in pinned.graph.input if i.name not in inits)
+    for dim, size in zip(value.type.tensor_type.shape.dim, (1, *input_shape), strict=True):
+        dim.Clear()
+        dim.dim_value = size
+    return onnx.shape_inference.infer_shapes(pinned, strict_mode=False)
+
+
+def onnx_graph_macs(data: bytes, input_shape: tuple[int, ...]) -> tuple[int, int]:
+    """MACs for one sample and floating-point parameters of an ONNX model (module doc)."""
+    import onnx
+    from onnx import numpy_helper
+
+    model = _pinned(onnx.load_from_string(data), tuple(input_shape))
+    shapes: dict[str, list[int]] = {}
+    for value in [*model.graph.input, *model.graph.value_info, *model.graph.output]:
+        dims = value.type.tensor_type.shape.dim
+        if all(d.HasField("dim_value") for d in dims):
+            shapes[value.name] = [d.dim_value for d in dims]
+    params = 0
+    for init in model.graph.initializer:
+        shapes[init.name] = list(init.dims)
+        if numpy_helper.to_array(init).dtype.kind == "f":
+            params += math.prod(init.dims)
+    macs = 0
+    for node in model.graph.node:
+        if node.op_type == "Conv":
+            out, weight = shapes[node.output[0]], shapes[node.input[1]]
+            macs += math.prod(out) * math.prod(weight[1:])
+        elif node.op_type == "Gemm":
+            a = shapes[node.input[0]]
+            trans_a = any(x.name == "transA" and x.i for x in node.attribute)
+            m, k = (a[1], a[0]) if trans_a else (a[0], a[1])
+            macs += m * k * shapes[node.output[0]][-1]
+        elif node.op_type == "MatMul":
+            macs += math.prod(shapes[node.output[0]]) * shapes[node.input[0]][-1]
+    return macs, params
+
+
+def adopted_cost(column: AdoptedColumn) -> AdoptedCost:
+    """The column's cost, computed once (see the module docstring for the sources)."""
+    cached = getattr(column, "_cost", None)
+    if cached is None:
+        if column.record.runtime == "onnxruntime":
+            macs, params = onnx_graph_macs(column.data or b"", tuple(column.record.input))
+        else:
+            macs, params = _torch_cost(column)
+        cached = AdoptedCost(int(macs), int(params), SOURCES[column.record.runtime])
+        column._cost = cached
+    return cached

@@ -1,0 +1,174 @@
+"""Reading taps: running a user's model unchanged and collecting named intermediate outputs.
+
+``ModuleTaps`` runs an ``nn.Module`` (the user's own, or a ``torch.export`` program made
+into modules by ``torch.export.unflatten``) and reads its tap submodules' outputs through
+forward hooks. A hook only reads the submodule's output and returns nothing, so the model
+computes what it computed before; rewriting it with torch.fx would give a new program.
+
+``OnnxTaps`` runs an ONNX model in onnxruntime with the taps added as extra graph
+outputs: no node is added, removed or changed. onnxruntime runs on the CPU with one
+intra-op and one inter-op thread and sequential execution (``ORT_SETTINGS``): its outputs
+were bit-stable run to run under these settings (measured here), and the settings are
+recorded in the workspace.
+"""
+
+from __future__ import annotations
+
+import difflib
+from collections.abc import Callable
+from typing import Any
+
+import numpy as np
+import torch
+import torch.nn as nn
+
+from ..errors import DataError, UsageError
+from .layers import Shape
+
+__all__ = ["ModuleTaps", "OnnxTaps", "ORT_SETTINGS", "nearest_names"]
+
+# onnxruntime session settings of every adopted ONNX column (and of the proof run).
+ORT_SETTINGS = {"intra_op_num_threads": 1, "inter_op_num_threads": 1,
+                "execution_mode": "sequential", "graph_optimization_level": "all",
+                "provider": "CPUExecutionProvider"}
+
+
+
+
+def nearest_names(name: str, known: list[str]) -> str:
+    close = difflib.get_close_matches(name, known, n=3, cutoff=0.3) or known[:3]
+    return ", ".join(close) if close else "none"
+
+
+
+class ModuleTaps:
+    """Runs an ``nn.Module`` and reads its tap submodules' outputs through forward hooks."""
+
+    runtime = "torch"
+
+    def __init__(self, module: nn.Module, taps: list[str]) -> None:
+        named = dict(module.named_modules())
+        for tap in taps:
+            if tap not in named or tap == "":
+                known = [n for n in named if n]
+                raise UsageError(f"the model has no submodule named {tap!r}; the nearest "
+                                 f"names are: {nearest_names(tap, known)}")
+        self.module = module
+        self.taps = list(taps)
+        self._seen: dict[str, list[torch.Tensor]] = {}
+        for tap in self.taps:
+            named[tap].register_forward_hook(self._hook(tap))
+
+    def _hook(self, tap: str) -> Callable[..., None]:
+        def read(_module: nn.Module, _inputs: Any, output: Any) -> None:
+            self._seen.setdefault(tap, []).append(output)  # read only; returns nothing
+        return read
+
+    def run(self, x: torch.Tensor) -> tuple[list[torch.Tensor], torch.Tensor]:
+        self._seen = {}
+        try:
+            logits = self.module(x)
+            seen = self._seen
+        finally:
+            self._seen = {}
+        taps = []
+        for tap in self.taps:
+            outs = seen.get(tap, [])
+            if len(outs) != 1 or not isinstance(outs[0], torch.Tensor):
+                what = "a tensor" if len(outs) == 1 else f"{len(outs)} times"
+                raise UsageError(f"tap {tap!r} ran {what} in one forward pass, not once with "
+                                 f"one tensor; choose a submodule that runs once per input")
+            taps.append(outs[0])
+        return taps, logits
+
+
+def _ort_options(ort: Any) -> Any:
+    options = ort.SessionOptions()
+    options.intra_op_num_threads = ORT_SETTINGS["intra_op_num_threads"]
+    options.inter_op_num_threads = ORT_SETTINGS["inter_op_num_threads"]
+    options.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
+    options.graph_optimization_level = ort.GraphOptimizationLevel.ORT_ENABLE_ALL
+    return options
+
+
+def _import_onnx() -> tuple[Any, Any]:
+    try:
+        import onnx
+        import onnxruntime
+    except ImportError:
+        raise UsageError("adopting an ONNX model needs onnx and onnxruntime; install them "
+                         "with 'pip install colonnade[onnx]'") from None
+    return onnx, onnxruntime
+
+
+class OnnxTaps:
+    """Runs an ONNX model in onnxruntime, its taps added as extra graph outputs."""
+
+    runtime = "onnxruntime"
+
+    def __init__(self, data: bytes, taps: list[str], input_shape: Shape,
+                 path: str = "model.onnx") -> None:
+        onnx, ort = _import_onnx()
+        try:
+            model = onnx.load_from_string(data)
+            onnx.checker.check_model(model)
+        except Exception:  # onnx raises several kinds for a file that is not ONNX
+            raise DataError(f"{path}: not a valid ONNX model; export it with "
+                            f"torch.onnx.export or check the file") from None
+        inits = {i.name for i in model.graph.initializer}
+        inputs = [i for i in model.graph.input if i.name not in inits]
+        if len(inputs) != 1 or len(model.graph.output) < 1:
+            raise DataError(f"{path}: the ONNX model must take one input tensor and return "
+                            f"the logits as its first output; it has {len(inputs)} inputs")
+        self.input_name = inputs[0].name
+        self.output_name = model.graph.output[0].name
+        _check_pinnable(inputs[0], input_shape, path)
+        values = [o for node in model.graph.node for o in node.output if o]
+        for tap in taps:
+            if tap not in values:
+                raise UsageError(f"the ONNX model has no value named {tap!r}; the nearest "
+                                 f"names are: {nearest_names(tap, values)}")
+        existing = {o.name for o in model.graph.output}
+        for tap in taps:  # extra outputs only: no node is added, removed or changed
+            if tap not in existing:
+                model.graph.output.append(onnx.ValueInfoProto(name=tap))
+                model.graph.output[-1].type.tensor_type.elem_type = onnx.TensorProto.FLOAT
+        self.taps = list(taps)
+        self.data = data
+        self.session = ort.InferenceSession(model.SerializeToString(), _ort_options(ort),
+                                            providers=[ORT_SETTINGS["provider"]])
+        self.version = ort.__version__
+
+    def original(self) -> Callable[[torch.Tensor], torch.Tensor]:
+        """The unmodified model alone, in a session with the same settings."""
+        _, ort = _import_onnx()
+        session = ort.InferenceSession(self.data, _ort_options(ort),
+                                       providers=[ORT_SETTINGS["provider"]])
+
+        def run(x: torch.Tensor) -> torch.Tensor:
+            feed = {self.input_name: x.detach().cpu().numpy()}
+            return torch.from_numpy(session.run([self.output_name], feed)[0])
+        return run
+
+    def run(self, x: torch.Tensor) -> tuple[list[torch.Tensor], torch.Tensor]:
+        feed = {self.input_name: np.ascontiguousarray(x.detach().cpu().numpy())}
+        outs = self.session.run([self.output_name, *self.taps], feed)
+        tensors = [torch.from_numpy(np.ascontiguousarray(o)).to(x.device) for o in outs]
+        return tensors[1:], tensors[0]
+
+
+def _check_pinnable(value: Any, input_shape: Shape, path: str) -> None:
+    """The input must be [batch, *input_shape]; symbolic sizes are pinned, not changed."""
+    dims = value.type.tensor_type.shape.dim
+    if len(dims) != 1 + len(input_shape):
+        raise DataError(f"{path}: the ONNX input has {len(dims)} dimensions, but the spec's "
+                        f"input {list(input_shape)} needs {1 + len(input_shape)} with the "
+                        f"batch first")
+    if dims[0].HasField("dim_value"):
+        raise DataError(f"{path}: the ONNX input's batch dimension is fixed at "
+                        f"{dims[0].dim_value}; export it with a dynamic batch axis")
+    for d, want in zip(dims[1:], input_shape, strict=True):
+        if d.HasField("dim_value") and d.dim_value != want:
+            sizes = [d.dim_value if d.HasField("dim_value") else d.dim_param for d in dims[1:]]
+            raise DataError(f"{path}: the ONNX input has sample shape {sizes}, which cannot "
+                            f"be pinned to the spec's input {list(input_shape)}")
