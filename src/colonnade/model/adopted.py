@@ -116,9 +116,17 @@ class AdoptedColumn(nn.Module):
         return self
 
     def __deepcopy__(self, memo: dict[int, Any]) -> AdoptedColumn:
-        """Share the model: it is frozen and never written, and neither a torch.export
-        program nor an onnxruntime session can be deep-copied (a trial copy of the
-        network, as in training.validation, needs no second one)."""
+        """A Python module is copied with its hooks; a file's runner is shared.
+
+        Neither a torch.export program made into modules nor an onnxruntime session can
+        be deep-copied, and neither is in the module tree, so nothing done to the copy
+        (such as re-initialising its parts) can reach them.
+        """
+        if self.model is not None:
+            runner = ModuleTaps(copy.deepcopy(self.model, memo), self.record.taps)
+            clone = AdoptedColumn(runner, self.record, self.data)
+            memo[id(self)] = clone
+            return clone
         clone = AdoptedColumn.__new__(AdoptedColumn)
         clone.__dict__ = {k: (v.copy() if isinstance(v, dict) else v)
                           for k, v in self.__dict__.items()}

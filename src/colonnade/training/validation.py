@@ -72,8 +72,12 @@ def accuracies(net: ProgressiveNet, tasks: Iterable[str] | None = None,
 
 
 def random_init_copy(net: ProgressiveNet, keep: Iterable[str], seed: int) -> ProgressiveNet:
-    """A copy whose parts, except ``keep``, are freshly initialised (seeded, no side effect)."""
-    keep = set(keep)
+    """A copy whose parts, except ``keep``, are freshly initialised (seeded, no side effect).
+
+    An adopted column 0 is kept as it is: a model brought from outside has no
+    initialiser of colonnade's, so the random network is random beside it.
+    """
+    keep = set(keep) | ({"column:0"} if net.adopted is not None else set())
     saved = net.attachments, net.meta
     net.attachments, net.meta = {}, {"history": [], "records": {}}
     try:
