@@ -61,7 +61,10 @@ class ModuleTaps:
 
     def _hook(self, tap: str) -> Callable[..., None]:
         def read(_module: nn.Module, _inputs: Any, output: Any) -> None:
-            self._seen.setdefault(tap, []).append(output)  # read only; returns nothing
+            # A copy, read only, returning nothing: the model's own tensor flows on
+            # unchanged, and a later in-place op of the model cannot alter the tap.
+            self._seen.setdefault(tap, []).append(
+                output.clone() if isinstance(output, torch.Tensor) else output)
         return read
 
     def run(self, x: torch.Tensor) -> tuple[list[torch.Tensor], torch.Tensor]:
@@ -135,7 +138,8 @@ class OnnxTaps:
                 model.graph.output[-1].type.tensor_type.elem_type = onnx.TensorProto.FLOAT
         self.taps = list(taps)
         self.data = data
-        self.session = ort.InferenceSession(model.SerializeToString(), _ort_options(ort),
+        self.tapped = model.SerializeToString()  # the file's graph plus the tap outputs
+        self.session = ort.InferenceSession(self.tapped, _ort_options(ort),
                                             providers=[ORT_SETTINGS["provider"]])
         self.version = ort.__version__
 
