@@ -24,11 +24,16 @@ import yaml
 from adopt_helpers import small_cnn
 
 import colonnade
+from colonnade.app.export import export_task
 from colonnade.cli import main
 from colonnade.errors import ColonnadeError, DataError, SpecError, UsageError
 from colonnade.model.adopted import adopt_onnx
 from colonnade.model.exported import load_exported_program
 from colonnade.model.taps import OnnxTaps
+from colonnade.training.data import TaskData
+from colonnade.training.growth import grow
+from colonnade.trimming.trim import trim
+from colonnade.trimming.usage import measure
 
 SHAPE = (3, 16, 16)
 TAPS = ["2", "4"]  # the second convolution ([8, 4, 4]) and the pooling ([8, 1, 1])
@@ -297,3 +302,43 @@ def test_head_on_the_adopted_column(tmp_path):
     with torch.no_grad():
         assert net(x, task="cheap").shape == (4, 3)
         assert torch.equal(net(x, task="t"), small_cnn()(x))
+
+
+# ----------------------------------------------------------------------------- the rest
+def _task_data(n: int = 48, classes: int = 3, seed: int = 1):
+    gen = torch.Generator().manual_seed(seed)
+    x = torch.rand(n, *SHAPE, generator=gen)
+    y = torch.arange(n) % classes
+    return TaskData(x[12:], y[12:], x[:12], y[:12], classes, "random")
+
+
+def test_usage_trim_and_export_with_tap_adapters(tmp_path):
+    net = colonnade.adopt(str(_pt2(tmp_path)), SHAPE, "t", TAPS, _spec(tmp_path))
+    data = _task_data()
+    grow(net, "new", data, mode="column", epochs=1, progress=False)
+    x = torch.rand(4, *SHAPE)
+    with torch.no_grad():
+        before = net(x, task="t")
+    colonnade.create(net.spec, tmp_path / "ws", net)
+    with pytest.raises(UsageError, match="reads the adopted model"):
+        export_task(tmp_path / "ws", "new", tmp_path / "new.onnx")
+    assert not (tmp_path / "new.onnx").exists()
+    scored = {u.key for u in measure(net, "new", data.x, data.y, repeats=1).adapters}
+    assert {"c1_b1_from_c0", "c1_b2_from_c0", "h_new_from_c0"} <= scored
+    report = trim(net, "new", data, max_drop=100.0, merge=True)  # everything may go
+    assert report.lateral_params_after < report.lateral_params_before
+    assert not any(a.kind == "joint" for a in net.adapter_info.values())  # taps: no merges
+    with torch.no_grad():
+        assert torch.equal(net(x, task="t"), before)  # the adopted task did not move
+
+
+def test_adopted_column_sees_the_input_unnormalised(tmp_path):
+    spec = yaml.safe_load(Path(_spec(tmp_path)).read_text())
+    spec["input"] = {"shape": list(SHAPE), "normalize": {"mean": [0.5] * 3, "std": [0.25] * 3}}
+    path = tmp_path / "norm.yaml"
+    path.write_text(yaml.safe_dump(spec))
+    x = torch.rand(3, *SHAPE)
+    net = colonnade.adopt(small_cnn(), SHAPE, "t", TAPS, str(path), probe=(x, torch.zeros(3)))
+    net.add_column("new", 2)
+    with torch.no_grad():
+        assert torch.equal(net.forward_all(x)["t"], small_cnn()(x))

@@ -24,6 +24,10 @@ def export_task(folder: str | Path, task: str, out: str | Path) -> dict[str, Any
     if out.is_dir():
         raise UsageError(f"{out}: is a folder; name a file")
     net = read_workspace(folder)
+    if net.adopted is not None and 0 in net.closure(task).columns:
+        raise UsageError(f"task {task!r} reads the adopted model in column 0, which export "
+                         f"cannot compose with the new parts yet; ship the adopted model's "
+                         f"own file beside the workspace's predictions instead")
     blob = standalone_blob(net, task)
     data = torch_bytes(blob) if kind == ".pt" else onnx_bytes(blob)
     atomic_write(out, data)

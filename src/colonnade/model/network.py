@@ -222,13 +222,14 @@ class ProgressiveNet(ArchitectureRecord, AdoptionMixin, nn.Module):
         a live adapter into a block that runs must itself be listed or given.
         """
         outs: dict[int, list[torch.Tensor]] = dict(given or {})
-        x = self.input_norm(x)
+        raw, x = x, self.input_norm(x)
         for k in sorted(columns):
             if k in outs:
                 continue
             col = self.columns[k]
             if isinstance(col, AdoptedColumn):
-                outs[k] = col(x)  # [tap_1, ..., tap_n, logits] (model.adoption)
+                # The input exactly as the adopted model was certified on: not normalised.
+                outs[k] = col(raw)  # [tap_1, ..., tap_n, logits] (model.adoption)
                 continue
             # The stem's and post's layers are called one by one rather than through their
             # nn.Sequential: the same operations, fewer module calls for small batches.

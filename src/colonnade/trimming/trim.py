@@ -246,7 +246,10 @@ def _merge_pass(net: ProgressiveNet, report: TrimReport, owned: list[str],
     """Fold each layer's remaining single-source adapters into one joint adapter."""
     by_layer: dict[str, list[str]] = {}
     for key, layer, _ in task_adapters(net, report.task):
-        if key in owned and len(net.adapter_sources(key)) == 1:
+        # Adapters reading an adopted column's taps are pruned, never merged: each reads
+        # its tap through its own shape bridge, so their sources do not concatenate.
+        if (key in owned and len(net.adapter_sources(key)) == 1
+                and "tap" not in net.adapter_info[key].extra):
             by_layer.setdefault(layer, []).append(key)
     for layer, keys in by_layer.items():
         if len(keys) < 2 or _target_met(report, net):
