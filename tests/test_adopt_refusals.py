@@ -8,6 +8,7 @@ sample inputs), onnx's graph protos (the adopted graph's nodes are the file's, u
 
 from __future__ import annotations
 
+import copy
 import io
 import json
 import pickle
@@ -22,10 +23,12 @@ import torch
 import torch.nn as nn
 import yaml
 from adopt_helpers import small_cnn
+from conftest import flop_macs
 
 import colonnade
 from colonnade.app.export import export_task
 from colonnade.cli import main
+from colonnade.costing import costs, sizing
 from colonnade.errors import ColonnadeError, DataError, SpecError, UsageError
 from colonnade.model.adopted import adopt_onnx
 from colonnade.model.exported import load_exported_program
@@ -49,14 +52,14 @@ class _Touch:
         return (open, (self.path, "w"))
 
 
-def _spec(tmp_path: Path, shape=SHAPE, **lateral) -> str:
+def _spec(tmp_path: Path, shape=SHAPE, kind: str = "linear", **lateral) -> str:
     path = tmp_path / "spec.yaml"
     path.write_text(yaml.safe_dump({
         "input": list(shape),
         "column": [{"conv2d": 4, "kernel": 3, "padding": 1}, {"act": "relu"},
                    {"conv2d": 4, "kernel": 3, "stride": 2, "padding": 1}, {"act": "relu"},
                    {"pool": "global_avg"}, {"dense": 8}],
-        "lateral": {"kind": "linear", **lateral}, "train": {"epochs": 1}}))
+        "lateral": {"kind": kind, **lateral}, "train": {"epochs": 1}}))
     return str(path)
 
 
@@ -342,3 +345,27 @@ def test_adopted_column_sees_the_input_unnormalised(tmp_path):
     net.add_column("new", 2)
     with torch.no_grad():
         assert torch.equal(net.forward_all(x)["t"], small_cnn()(x))
+
+
+@pytest.mark.parametrize("lateral", ["none", "linear", "nonlinear"])
+@pytest.mark.parametrize("mode", ["column", "head"])
+def test_projection_beside_an_adopted_column_equals_growing_for_real(tmp_path, lateral, mode):
+    net = colonnade.adopt(small_cnn(), SHAPE, "t", TAPS, _spec(tmp_path, kind=lateral))
+    net.add_column("a", 3, seed=0)
+    net.freeze()
+    proj = sizing.project(net, 2, mode=mode, classes=5)
+    real = copy.deepcopy(net)
+    x = torch.rand(1, *SHAPE)
+    for p in proj.tasks:
+        before = {id(q) for q in real.parameters()}
+        if mode == "column":
+            real.add_column(p.task, 5, seed=0)
+        else:
+            real.add_head(p.task, 5, on=real.column_info[-1].task, seed=0)
+        real.freeze()
+        # Sources: numel() of the grown modules; FlopCounterMode over the real forward.
+        assert p.added.params == sum(q.numel() for q in real.parameters() if id(q) not in before)
+        assert p.path.macs == flop_macs(lambda t=p.task: real(x, task=t))
+        assert p.network_macs_all == flop_macs(lambda: real.forward_all(x))
+        assert p.network.params == sum(q.numel() for q in real.parameters())
+        assert p.activation_elements == costs.task_cost(real, p.task).path.activation_elements

@@ -26,6 +26,8 @@ from dataclasses import dataclass, field
 import torch
 
 from ..errors import UsageError
+from ..model.adopted import AdoptedColumn
+from ..model.bridges import bridge_for, bridged_target, tap_for_block
 from ..model.layers import Shape, check_width, layer_output_shape, plan_column
 from ..model.network import ProgressiveNet
 from ..model.schema import Conv1d, Conv2d, Dense, LateralSpec, LayerSpec, Norm, Spec
@@ -162,6 +164,51 @@ def _head_adapter(spec: Spec, lateral: LateralSpec, source_width: float,
     return adapter_figures(lateral, features, (classes,), Dense(dense=classes))
 
 
+def _tap_block_adapters(column: AdoptedColumn, spec: Spec, lateral: LateralSpec,
+                        target_width: float) -> Figures:
+    """Every block adapter from an adopted column's taps into a new column: each tap
+    through its shape bridge, then a pointwise map into the block (model.bridges)."""
+    dst, total = plan_column(spec, target_width), Figures()
+    for b in range(1, len(dst.blocks)):
+        tap = tap_for_block(column.taps, b, lateral.taps)
+        if tap is None:
+            continue
+        block = dst.blocks[b]
+        _, bridged = bridge_for(tuple(column.record.tap_shapes[tap]), block.pre_shape,
+                                lateral.bridge)
+        total += adapter_figures(lateral, bridged, block.pre_shape,
+                                 bridged_target(block.weighted, block.pre_shape))
+    return total
+
+
+def _last_tap_features(column: AdoptedColumn, lateral: LateralSpec, classes: int) -> Shape:
+    """What a head (or head adapter) reads of an adopted column: its bridged last tap."""
+    return bridge_for(tuple(column.record.tap_shapes[-1]), (classes,), lateral.bridge)[1]
+
+
+def _from_source(net: ProgressiveNet, spec: Spec, lateral: LateralSpec, j: int,
+                 source_width: float, target_width: float) -> Figures:
+    if j == 0 and net.adopted is not None:
+        return _tap_block_adapters(net.adopted, spec, lateral, target_width)
+    return _block_adapters(spec, lateral, source_width, target_width)
+
+
+def _head_from_source(net: ProgressiveNet, spec: Spec, lateral: LateralSpec, j: int,
+                      source_width: float, classes: int) -> Figures:
+    if j == 0 and net.adopted is not None:
+        features = _last_tap_features(net.adopted, lateral, classes)
+        return adapter_figures(lateral, features, (classes,), Dense(dense=classes))
+    return _head_adapter(spec, lateral, source_width, classes)
+
+
+def _carrier_features(net: ProgressiveNet, lateral: LateralSpec, carrier: int,
+                      classes: int) -> int:
+    col = net.columns[carrier]
+    if isinstance(col, AdoptedColumn):
+        return _last_tap_features(col, lateral, classes)[0]
+    return col.out_features
+
+
 # ----------------------------------------------------------------------------- projection
 @dataclass(frozen=True)
 class GrowthRule:
@@ -295,9 +342,9 @@ def project(net: ProgressiveNet, n: int, width: float | None = None, mode: str =
         per = _block_adapters(spec, lat, w, w) + _head_adapter(spec, lat, w, c)
     else:
         carrier = len(net.columns) - 1
-        rule_base = head_figures(net.columns[carrier].out_features, c)
+        rule_base = head_figures(_carrier_features(net, lat, carrier, c), c)
         for j in range(carrier):
-            rule_base += _head_adapter(spec, lat, widths[j], c)
+            rule_base += _head_from_source(net, spec, lat, j, widths[j], c)
         per = Figures()
     rule = GrowthRule(mode, w if mode == "column" else widths[-1], c, lat.kind, rule_base, per)
 
@@ -319,7 +366,7 @@ def project(net: ProgressiveNet, n: int, width: float | None = None, mode: str =
             cf = column_figures(spec, w)
             adapters = Figures()
             for j in range(k):
-                adapters += _block_adapters(spec, lat, widths[j], w)
+                adapters += _from_source(net, spec, lat, j, widths[j], w)
             adapters = _scaled(adapters, keep)
             head = head_figures(plan_column(spec, w).out_shape[0], c)
             widths.append(w)
@@ -328,11 +375,11 @@ def project(net: ProgressiveNet, n: int, width: float | None = None, mode: str =
         else:
             carrier = len(widths) - 1
             cf, adapters = Figures(), Figures()
-            head = head_figures(net.columns[carrier].out_features, c)
+            head = head_figures(_carrier_features(net, lat, carrier, c), c)
             meta.add_head(name, c, on=meta.column_info[carrier].task, seed=0)
         head_adapters = Figures()
         for j in range(carrier):
-            head_adapters += _head_adapter(spec, lat, widths[j], c)
+            head_adapters += _head_from_source(net, spec, lat, j, widths[j], c)
         head_adapters = _scaled(head_adapters, keep)
         added = cf + adapters + head + head_adapters
         meta.freeze()

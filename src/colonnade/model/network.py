@@ -94,6 +94,8 @@ class ProgressiveNet(ArchitectureRecord, AdoptionMixin, nn.Module):
     def device(self) -> torch.device:
         for p in self.parameters():
             return p.device
+        for b in self.buffers():  # a network of only a .pt2 or .onnx adopted column
+            return b.device
         return torch.device("cpu")
 
     def task(self, name: str) -> TaskInfo:
