@@ -151,8 +151,11 @@ def _measured_adapter(adapter: torch.nn.Module) -> Figures:
 
 
 def _future_adapter(meta: ProgressiveNet, key: str, lateral: LateralSpec) -> Figures:
-    """A projected adapter by the closed form, from its place in the meta network."""
+    """A projected adapter by the closed form, from its place in the meta network; one
+    reading an adopted column's tap from its module there (its bridge sets its shapes)."""
     info = meta.adapter_info[key]
+    if "tap" in info.extra:
+        return _measured_adapter(meta.adapters[key])
     shapes, target_shape, target = meta.lateral_geometry(info.sources, info.column,
                                                          info.block, info.head)
     return adapter_figures(lateral, shapes[0], target_shape, target)
