@@ -163,9 +163,6 @@ class ProgressiveNet(ArchitectureRecord, AdoptionMixin, nn.Module):
                     adapters.append(key)
                     for j in self._sources[key]:
                         need[j] = max(need.get(j, 0), b)  # reads block b-1: blocks 0..b-1
-        for k in need:  # an adopted model runs whole, whichever of its taps is read
-            if isinstance(self.columns[k], AdoptedColumn):
-                need[k] = full[k]
         columns = tuple(sorted(k for k, d in need.items() if d > 0 or k == info.column))
         return Closure(task, columns, tuple(sorted(adapters)), task,
                        {k: need[k] for k in columns}, {k: full[k] for k in columns},
