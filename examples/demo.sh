@@ -60,6 +60,23 @@ colonnade predict "$WS" --all --data "$DATA/pump_a_faults_probe.npz" -o "$OUT/al
 colonnade export "$WS" --task pump_a_cavitation -o "$OUT/pump_a_cavitation.pt"
 colonnade export "$WS" --task pump_a_cavitation -o "$OUT/pump_a_cavitation.onnx"
 
+echo "== a second scenario: a camera inspection station adopts its certified defect classifier"
+# Invented: the station's classifier (ok / scratch / dent) is already certified and runs
+# in onnxruntime. It is adopted unchanged as column 0, proven bit-identical on a probe and
+# sealed; an oil-stain check grows beside it, reading the classifier's taps.
+INS=$OUT/inspection
+python examples/inspection_data.py --out "$INS/data"
+colonnade adopt "$INS/data/station_classifier.onnx" -o "$INS/workspace" --task defects \
+  --taps "$(cat "$INS/data/taps.txt")" --spec specs/inspection_station.yaml \
+  --probe "$INS/data/defects_probe.npz" --seal
+colonnade grow "$INS/workspace" --task oil_stain --train "$INS/data/oil_stain.npz" --quiet
+colonnade seal "$INS/workspace" --task oil_stain --probe "$INS/data/oil_stain_probe.npz"
+colonnade cost "$INS/workspace" --no-latency
+if command -v dot >/dev/null 2>&1; then
+  colonnade draw "$INS/workspace" -o "$INS/architecture.svg"
+fi
+colonnade check "$INS/workspace"
+
 echo "== last: every seal checked, bit for bit (exits non-zero if any task moved)"
 # Keep these last: every sealed task checks exact, and the last task moved none of them.
 colonnade check "$WS"
