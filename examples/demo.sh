@@ -9,16 +9,17 @@ DATA=$OUT/data
 rm -rf "$OUT"
 mkdir -p "$OUT"
 
-echo "== 1. synthetic vibration spectra for three tasks"
-python examples/pump_data.py --out "$DATA"
+echo "== 1. synthetic vibration spectra for three tasks (also as class folders of .npy files)"
+python examples/pump_data.py --out "$DATA" --folders
 
 echo "== 2. a workspace from the spec"
 colonnade new specs/pump_spectra.yaml -o "$WS"
 
 echo "== 3. grow one task at a time and seal it; earlier columns stay frozen"
 # @grow-and-seal: each task is grown, then sealed (seal lines are added by the seal step)
-colonnade grow "$WS" --task pump_a_faults --train "$DATA/pump_a_faults.npz" --quiet
-colonnade seal "$WS" --task pump_a_faults --probe "$DATA/pump_a_faults_probe.npz"
+# The first task reads class folders: its class names are the folder names.
+colonnade grow "$WS" --task pump_a_faults --train "$DATA/pump_a_faults" --quiet
+colonnade seal "$WS" --task pump_a_faults --probe "$DATA/pump_a_faults_probe"
 colonnade grow "$WS" --task pump_b_faults --train "$DATA/pump_b_faults.npz" --quiet
 colonnade seal "$WS" --task pump_b_faults --probe "$DATA/pump_b_faults_probe.npz"
 # A copy as the workspace stood before its last task, for the closing 'diff'.
@@ -35,7 +36,8 @@ echo "== 4. what the network holds"
 colonnade show "$WS"
 
 echo "== 5. predictions of the first task on its probe set"
-colonnade predict "$WS" --task pump_a_faults --data "$DATA/pump_a_faults_probe.npz" -o "$OUT/pump_a_faults_pred.npz"
+colonnade predict "$WS" --task pump_a_faults --data "$DATA/pump_a_faults_probe" -o "$OUT/pump_a_faults_pred.csv"
+head -3 "$OUT/pump_a_faults_pred.csv" | cut -c1-120
 
 # @later-steps: checks, costs, diagrams and the report go below
 echo "== 6. what each task costs, and whether ten more fit a microcontroller-class sensor module"
@@ -56,7 +58,7 @@ echo "== 8. the review pack: evidence first, as markdown, self-contained HTML, P
 colonnade report "$WS" -o "$OUT/report" --hardware vibe-node --project 10
 
 echo "== 9. every task in one pass (each column once), and one task shipped alone"
-colonnade predict "$WS" --all --data "$DATA/pump_a_faults_probe.npz" -o "$OUT/all_tasks_pred.npz"
+colonnade predict "$WS" --all --data "$DATA/pump_a_faults_probe" -o "$OUT/all_tasks_pred.npz"
 colonnade export "$WS" --task pump_a_cavitation -o "$OUT/pump_a_cavitation.pt"
 colonnade export "$WS" --task pump_a_cavitation -o "$OUT/pump_a_cavitation.onnx"
 

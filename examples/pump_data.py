@@ -4,13 +4,18 @@ Everything here is made up: the pump models, their speeds and the fault sizes.
 The fault shapes follow common-practice rules of thumb of vibration analysis so
 that the demo tasks look plausible, not to model any real machine.
 
-    python examples/pump_data.py --out DIR [--train N] [--probe N] [--seed S]
+    python examples/pump_data.py --out DIR [--train N] [--probe N] [--seed S] [--folders]
+
+With ``--folders`` every task is also written as class folders, one ``.npy`` file per
+spectrum: ``DIR/<task>/<class>/<n>.npy`` (training) and ``DIR/<task>_probe/...``, which
+colonnade reads with its folder reader (class names from the folder names).
 """
 
 from __future__ import annotations
 
 import argparse
 import os
+import shutil
 import sys
 import tempfile
 import zlib
@@ -207,6 +212,33 @@ def write_task_files(out_dir: str, name: str, n_train: int, n_probe: int, seed: 
     return paths
 
 
+def write_task_folders(out_dir: str, name: str, n_train: int, n_probe: int, seed: int) -> dict:
+    """Write the same samples as ``write_task_files`` as class folders of .npy files.
+
+    ``<out>/<name>/<class>/<n>.npy`` for training and ``<out>/<name>_probe/...`` for the
+    probe; each folder is built under a temporary name and renamed when complete.
+    """
+    paths = {}
+    classes = TASKS[name]["classes"]
+    for kind, n, stream, suffix in (("train", n_train, 0, ""), ("probe", n_probe, 1, "_probe")):
+        x, y = make_task(name, n, seed, stream=stream)
+        final = os.path.join(out_dir, f"{name}{suffix}")
+        tmp = tempfile.mkdtemp(dir=out_dir, prefix=f".{name}{suffix}.")
+        try:
+            for c in classes:
+                os.makedirs(os.path.join(tmp, c))
+            for i, (row, label) in enumerate(zip(x, y, strict=True)):
+                np.save(os.path.join(tmp, classes[label], f"{i:05d}.npy"), row)
+            if os.path.isdir(final):
+                shutil.rmtree(final)
+            os.replace(tmp, final)
+        except BaseException:
+            shutil.rmtree(tmp, ignore_errors=True)
+            raise
+        paths[kind] = final
+    return paths
+
+
 class _Parser(argparse.ArgumentParser):
     def error(self, message):  # one sentence, no usage dump
         sys.stderr.write(f"pump_data: {message}.\n")
@@ -229,6 +261,8 @@ def main(argv=None) -> int:
     p.add_argument("--train", type=_count, default=1200, help="training samples per task")
     p.add_argument("--probe", type=_count, default=400, help="probe samples per task")
     p.add_argument("--seed", type=int, default=0, help="seed; same seed, same files")
+    p.add_argument("--folders", action="store_true",
+                   help="also write each task as class folders of .npy files")
     a = p.parse_args(argv)
     if a.seed < 0:
         p.error(f"--seed must be non-negative, got {a.seed}")
@@ -239,6 +273,9 @@ def main(argv=None) -> int:
                     x, y = z["x"], z["y"]
                 counts = " ".join(f"{c}:{k}" for c, k in enumerate(np.bincount(y)))
                 print(f"{path} x{list(x.shape)} {x.dtype} classes {counts}")
+            if a.folders:
+                for path in write_task_folders(a.out, name, a.train, a.probe, a.seed).values():
+                    print(f"{path}/ one folder per class, one .npy file per spectrum")
     except OSError as e:
         sys.stderr.write(f"pump_data: cannot write to {a.out!r} ({e.strerror or e}).\n")
         return 2

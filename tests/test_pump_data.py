@@ -67,3 +67,21 @@ def test_cli_rejects_bad_count(tmp_path, capsys):
         pump_data.main(["--out", str(tmp_path), "--train", "0"])
     assert e.value.code == 2
     assert capsys.readouterr().err.count("\n") == 1
+
+
+def test_class_folders_hold_the_same_spectra_as_the_arrays(tmp_path):
+    from colonnade.training.data import load_task_data
+
+    paths = pump_data.write_task_folders(str(tmp_path), "pump_a_cavitation", 12, 4, seed=2)
+    x, y = pump_data.make_task("pump_a_cavitation", 12, seed=2)
+    data = load_task_data(paths["train"], (128,), split=False)
+    names = pump_data.TASKS["pump_a_cavitation"]["classes"]
+    assert data.class_names == sorted(names)
+    # Reference: the arrays themselves, each .npy read back by numpy.
+    for i, sample in enumerate(data.ids):
+        k = int(pathlib.Path(sample).stem)
+        assert np.array_equal(np.load(sample), x[k])
+        assert np.array_equal(data.x[i].numpy(), x[k])
+        assert data.class_names[int(data.y[i])] == names[y[k]]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["pump_a_cavitation",
+                                                          "pump_a_cavitation_probe"]

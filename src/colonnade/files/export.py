@@ -132,8 +132,11 @@ def task_architecture(net: ProgressiveNet, task: str) -> dict[str, Any]:
         adapters.append({"key": key, "sources": list(net.adapter_sources(key)),
                          "column": None, "block": None, "head": task,
                          "steps": _adapter_steps(key, net.adapters[key])})
-    return {"task": task, "columns": columns, "adapters": adapters,
+    arch = {"task": task, "columns": columns, "adapters": adapters,
             "head": describe_layer(net.heads[task]), "head_column": net.task(task).column}
+    if net.normalization is not None:  # the buffers' shape; their values are in the state
+        arch["input_norm"] = list(net.input_norm.mean.shape)
+    return arch
 
 
 def standalone_state(net: ProgressiveNet, task: str) -> dict[str, torch.Tensor]:
@@ -183,6 +186,8 @@ def standalone_blob(net: ProgressiveNet, task: str) -> dict[str, Any]:
         "version": VERSION,
         "task": task,
         "classes": info.classes,
+        "class_names": info.class_names,
+        "normalization": net.normalization,
         "input_shape": list(net.input_shape),
         "architecture": task_architecture(net, task),
         "state": state,
@@ -223,6 +228,8 @@ def onnx_bytes(blob: dict[str, Any]) -> bytes:
     proto = onnx.load_from_string(buf.getvalue())
     meta = blob["meta"]
     props = {"colonnade.task": blob["task"], "colonnade.classes": str(blob["classes"]),
+             "colonnade.class_names": json.dumps(blob.get("class_names")),
+             "colonnade.normalization": json.dumps(blob.get("normalization")),
              "colonnade.input_shape": json.dumps(blob["input_shape"]),
              "colonnade.closure_sha256": meta["closure_sha256"],
              "colonnade.seal": json.dumps(meta["seal"]),

@@ -8,8 +8,10 @@ it can be copied next to a service that has nothing but torch installed::
     logits = model(x)                               # x: (N, *meta["input_shape"])
 
 The file is a plain dictionary written by ``torch.save``: ``format``, ``version``,
-``task``, ``classes``, ``input_shape``, ``architecture`` (plain data naming torch layers
-and their arguments, the column order, each lateral adapter's sources and target),
+``task``, ``classes``, ``class_names`` (or None), ``normalization`` (the input's
+``{mean, std}`` per channel, or None), ``input_shape``, ``architecture`` (plain data
+naming torch layers and their arguments, the column order, each lateral adapter's
+sources and target, the input normalisation's buffer shape),
 ``state`` (tensors by the grown network's own ``state_dict`` keys, only those of the
 task's closure) and ``meta`` (closure digest, seal, versions). ``weights_only=True`` loading
 accepts exactly such dictionaries and runs no code. The forward below repeats the grown
@@ -85,12 +87,27 @@ class _Column(nn.Module):
         self.blocks = nn.ModuleList(_Block(b) for b in desc["blocks"])
 
 
+class _InputNorm(nn.Module):
+    """The grown network's input normalisation: ``(x - mean) / std`` per channel."""
+
+    def __init__(self, view: list[int]) -> None:
+        super().__init__()
+        self.register_buffer("mean", torch.zeros(view))
+        self.register_buffer("std", torch.ones(view))
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        return (x - self.mean) / self.std
+
+
 class TaskModel(nn.Module):
     """One task's closure: its columns, the live adapters between them, its head."""
 
     def __init__(self, architecture: dict[str, Any]) -> None:
         super().__init__()
         self.task = architecture["task"]
+        # Input normalisation (its buffers ride in the state as input_norm.mean/std).
+        view = architecture.get("input_norm")
+        self.input_norm = nn.Identity() if view is None else _InputNorm([int(v) for v in view])
         self.order = [int(c["index"]) for c in architecture["columns"]]
         self.head_column = int(architecture["head_column"])
         self.columns = nn.ModuleDict({str(c["index"]): _Column(c)
@@ -117,6 +134,7 @@ class TaskModel(nn.Module):
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         outs: dict[int, list[torch.Tensor]] = {}
+        x = self.input_norm(x)
         for k in self.order:
             col = self.columns[str(k)]
             h = col.stem(x)
