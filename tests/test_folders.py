@@ -226,3 +226,20 @@ def test_skip_bad_lists_and_records_the_bad_files(image_ws, capsys):
     record = manifest["records"]["digits"]["data"]
     assert record["skipped"] == 2 and record["n_train"] + record["n_val"] == 300
     assert manifest["network"]["tasks"][0]["class_names"] == [str(c) for c in range(10)]
+
+
+def test_sample_rates_other_than_the_specs_or_the_first_files_are_refused(tmp_path):
+    _wave_folder(tmp_path / "w", rate=8000, per_class=2)
+    odd = tmp_path / "w" / "hum" / "odd.wav"
+    soundfile.write(odd, np.zeros((400, 2), np.float32), 16000, subtype="FLOAT")
+    with pytest.raises(DataError, match=r"odd.wav: its sample rate is 16000 Hz, the first "
+                                        r"waveform's is 8000 Hz; resample it"):
+        load_task_data(tmp_path / "w", (2, 400))
+    odd.unlink()
+    with pytest.raises(DataError, match=r"its sample rate is 8000 Hz, the spec's input.rate is "
+                                        r"44100 Hz"):
+        load_task_data(tmp_path / "w", (2, 400), rate=44100)
+    mono = tmp_path / "w" / "whine" / "mono.wav"
+    soundfile.write(mono, np.zeros(400, np.float32), 8000, subtype="FLOAT")
+    with pytest.raises(DataError, match=r"mono.wav: it has 1 channel\(s\), the spec's input 2"):
+        load_task_data(tmp_path / "w", (2, 400))
