@@ -4,8 +4,9 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+import torch
 
-from colonnade.errors import DataError
+from colonnade.errors import DataError, UsageError
 from colonnade.training.data import load_task_data, stratified_split
 
 
@@ -119,3 +120,44 @@ def test_pickled_npz_is_refused(tmp_path):
     np.savez(p, x=np.array([{"a": 1}], dtype=object), y=np.array([0]))
     with pytest.raises(DataError, match="cannot read as .npz"):
         load_task_data(p, (8,))
+
+
+def test_narrow_types_are_converted_with_a_note_and_wide_values_refused(tmp_path):
+    # Issue 14 item 8. float32's largest value is 3.4028235e38 (IEEE 754 single precision).
+    y = np.arange(6) % 2
+    for dtype in (np.int16, np.float16, np.uint8):
+        d = load_task_data(_npz(tmp_path / "n.npz", x=np.ones((6, 2), dtype), y=y), (2,),
+                           split=False)
+        assert d.x.dtype == torch.float32 and d.x.tolist() == [[1.0, 1.0]] * 6
+        assert d.notes == [f"converted {np.dtype(dtype).name} values to float32"]
+    wide = np.ones((6, 2))
+    wide[4, 1] = 1e39
+    with pytest.raises(DataError, match=r"x\[4\]: feature 1 holds 1e\+39, beyond the float32"):
+        load_task_data(_npz(tmp_path / "w.npz", x=wide, y=y), (2,))
+    p = tmp_path / "w.csv"
+    p.write_text("volts,amps,label\n1,2,0\n3,4e39,1\n")
+    with pytest.raises(DataError, match=r"line 3: column 'amps' holds 4e\+39, beyond"):
+        load_task_data(p, (2,))
+
+
+def test_huge_class_counts_are_refused_before_anything_is_allocated(tmp_path):
+    import tracemalloc
+
+    from colonnade.model.network import ProgressiveNet
+    from colonnade.model.spec import parse_spec
+
+    x = np.zeros((3, 2), np.float32)
+    path = _npz(tmp_path / "a.npz", x=x, y=np.array([0, 1, 10**9]))
+    tracemalloc.start()
+    with pytest.raises(DataError, match="holds label 1000000000, but labels run 0..C-1 with at "
+                                        "most 65536 classes"):
+        load_task_data(path, (2,))
+    with pytest.raises(DataError, match="1000000000000 classes is more than colonnade allows"):
+        load_task_data(_npz(tmp_path / "b.npz", x=x, y=np.array([0, 1, 1])), (2,),
+                       classes=10**12)
+    net = ProgressiveNet(parse_spec({"input": [2], "column": [{"dense": 4}]}))
+    with pytest.raises(UsageError, match="at most 65536 classes, got 1000000000"):
+        net.add_column("t", 10**9)
+    peak = tracemalloc.get_traced_memory()[1]
+    tracemalloc.stop()
+    assert peak < 50 << 20  # a head of 10^9 classes would need 4 GB per input feature

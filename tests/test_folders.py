@@ -243,3 +243,25 @@ def test_sample_rates_other_than_the_specs_or_the_first_files_are_refused(tmp_pa
     soundfile.write(mono, np.zeros(400, np.float32), 8000, subtype="FLOAT")
     with pytest.raises(DataError, match=r"mono.wav: it has 1 channel\(s\), the spec's input 2"):
         load_task_data(tmp_path / "w", (2, 400))
+
+
+def test_predict_an_unlabelled_folder_of_camera_images(image_ws, capsys):
+    import csv
+
+    ws = image_ws / "ws"
+    assert run("grow", ws, "--task", "digits", "--train", image_ws / "digits", "--quiet") == 0
+    field = image_ws / "field"
+    field.mkdir()
+    pixels, _ = _digits()
+    for i in range(4):  # larger RGB JPEGs from the camera: converted and resized
+        Image.fromarray(pixels[400 + i]).convert("RGB").resize((16, 16)).save(
+            field / f"cam{i}.jpg")
+    capsys.readouterr()
+    assert run("predict", ws, "--task", "digits", "--data", field, "-o",
+               image_ws / "field.csv") == 0
+    assert "accuracy" not in capsys.readouterr().out
+    with open(image_ws / "field.csv", newline="") as f:
+        rows = list(csv.DictReader(f))
+    assert [r["id"] for r in rows] == [f"cam{i}.jpg" for i in range(4)]
+    assert all(r["predicted"] in [str(c) for c in range(10)] for r in rows)
+    assert "label" not in rows[0]
