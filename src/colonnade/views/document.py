@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import base64
 import html
+import re
 from dataclasses import dataclass, field
 
 __all__ = ["Table", "Figure", "Section", "to_markdown", "to_html", "WIDE_COLUMNS"]
@@ -41,6 +42,7 @@ class Figure:
     name: str
     alt: str
     small: bool = False  # drawn beside a table rather than across the page
+    large: bool = False  # a diagram or a big matrix: may take most of a page
 
 
 @dataclass
@@ -53,6 +55,7 @@ class Section:
     anchor: str = ""
     emphasis: list[str] = field(default_factory=list)  # paragraphs set apart (a caution)
     after: list[str] = field(default_factory=list)  # paragraphs after the tables
+    new_page: bool = False  # in print, start on a fresh page
 
     @property
     def wide(self) -> bool:
@@ -110,7 +113,7 @@ caption{caption-side:top;text-align:left;font-style:italic;color:#555;padding:.2
 th,td{border:1px solid #ccc;padding:.2em .45em;text-align:right;vertical-align:top}
 th{background:#f0f4f9;font-weight:600}
 td{white-space:nowrap}
-td:first-child,th:first-child{text-align:left}
+td:first-child,th:first-child,.text{text-align:left}
 table.kv td{white-space:normal;text-align:left;overflow-wrap:anywhere}
 table.kv td:first-child{color:#444;white-space:nowrap}
 table.kv th{text-align:left}
@@ -141,8 +144,9 @@ img.small{max-width:320px}
  .pair > div{display:inline-block;vertical-align:top;margin-right:1.2em}
  img{max-width:100%;max-height:10.5cm}
  img.small{width:6.5cm;max-height:none}
- img.diagram{max-height:16.5cm}
+ img.large{max-height:15.5cm}
  section.keep{page-break-inside:avoid}
+ section.new-page{page-break-before:always}
  .hidden-print{display:none}
 }
 """
@@ -155,21 +159,38 @@ def _img(name: str, data: bytes, alt: str, css: str = "") -> str:
             f'src="data:{mime};base64,{base64.b64encode(data).decode("ascii")}">')
 
 
-def _verdict_class(text: str) -> str:
+def _verdict_class(text: str) -> list[str]:
     word = text.split(" ")[0] if text else ""
-    return f' class="verdict-{word}"' if word in ("exact", "moved", "unverified") else ""
+    return [f"verdict-{word}"] if word in ("exact", "moved", "unverified") else []
+
+
+_FIGURE = re.compile(r"^[-+]?[\d,.]+( ?(%|B|KiB|MiB|GiB|ms))?( \([\d.,-]+\))?$|^-$|^v\d+$")
+
+
+def _text_columns(t: Table) -> set[int]:
+    """Columns holding words rather than figures: those are read left-aligned."""
+    return {i for i in range(len(t.rows[0]))
+            if any(i < len(r) and not _FIGURE.match(r[i]) for r in t.rows[1:])}
 
 
 def _html_table(t: Table) -> str:
     e = html.escape
     cls = ' class="kv"' if t.key_value else ""
+    text = _text_columns(t)
+
+    def cell(i: int, c: str) -> str:
+        classes = (["text"] if i in text else []) + _verdict_class(c)
+        return f'<td class="{" ".join(classes)}">' if classes else "<td>"
+
     out = [f"<table{cls}>"]
     if t.caption:
         out.append(f"<caption>{e(t.caption)}</caption>")
-    out.append("<thead><tr>" + "".join(f"<th>{e(c)}</th>" for c in t.rows[0])
+    left = ' class="text"'
+    out.append("<thead><tr>" + "".join(f"<th{left if i in text else ''}>{e(c)}</th>"
+                                       for i, c in enumerate(t.rows[0]))
                + "</tr></thead><tbody>")
     for r in t.rows[1:]:
-        out.append("<tr>" + "".join(f"<td{_verdict_class(c)}>{e(c)}</td>" for c in r)
+        out.append("<tr>" + "".join(f"{cell(i, c)}{e(c)}</td>" for i, c in enumerate(r))
                    + "</tr>")
     out.append("</tbody></table>")
     return "".join(out)
@@ -187,7 +208,8 @@ def to_html(title: str, sections: list[Section], figures: dict[str, bytes], note
     for s in sections:
         anchor = f' id="{e(s.anchor)}"' if s.anchor else ""
         keep = " keep" if not s.tables and s.figures else ""  # keep a title with its figure
-        parts.append(f'<section{anchor} class="{"wide" if s.wide else "narrow"}{keep}">')
+        page = " new-page" if s.new_page else ""
+        parts.append(f'<section{anchor} class="{"wide" if s.wide else "narrow"}{keep}{page}">')
         parts.append(f"<h{s.level}>{e(s.title)}</h{s.level}>")
         parts += [f'<p class="caution">{e(p)}</p>' for p in s.emphasis]
         parts += [f"<p>{e(p)}</p>" for p in s.paragraphs]
@@ -202,8 +224,7 @@ def to_html(title: str, sections: list[Section], figures: dict[str, bytes], note
             parts += [_img(f.name, figures[f.name], f.alt, "small") for f in small]
         for f in s.figures:
             if not f.small and f.name in figures:
-                css = "diagram" if f.name.startswith("architecture") else ""
-                parts.append(_img(f.name, figures[f.name], f.alt, css))
+                parts.append(_img(f.name, figures[f.name], f.alt, "large" if f.large else ""))
         parts += [f"<p>{e(p)}</p>" for p in s.after]
         parts.append("</section>")
     parts += [f'<p class="note">{e(n)}</p>' for n in notes]

@@ -178,11 +178,12 @@ def seal_sections(net: ProgressiveNet, check: Mapping[str, Any] | None,
     figures: dict[str, bytes] = {}
     sealed = sealed_tasks(net)
     if not sealed:
-        return [Section("Seals", paragraphs=["No task is sealed."], anchor="seals")], {}
+        return [Section("Seals", paragraphs=["No task is sealed."], anchor="seals",
+                        new_page=True)], {}
     sections.append(Section("Seals", paragraphs=[
         "Each sealed task: what its seal covers, how its reference was computed, its "
         "metrics on the probe, and the verdict of the check run for this report. Digests "
-        "are shortened here; report.json holds them whole."], anchor="seals"))
+        "are shortened here; report.json holds them whole."], anchor="seals", new_page=True))
     for task, entry in sealed.items():
         closure = entry.get("closure") or {}
         probe = entry.get("probe") or {}

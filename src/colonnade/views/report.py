@@ -211,7 +211,7 @@ def _cost_sections(ledger: dict[str, Any], accuracy: dict[str, Any] | None) -> l
             + (f" {acc}." if acc else "")
             + " Hatched cells: a task measured on the untrained start of its own parts, "
               "before training; grey: the task did not exist yet."],
-            figures=[Figure("accuracy.png", "accuracy matrix")]))
+            figures=[Figure("accuracy.png", "accuracy matrix", large=len(accuracy["tasks"]) > 6)]))
     return out
 
 
@@ -261,10 +261,9 @@ def build_report(net: ProgressiveNet, name: str, hardware: Any = None,
         png, why = diagram_svg(net, "png")
     if svg is not None and png is not None:
         figures["architecture.png"] = png
-        sections.append(Section("Architecture", figures=[Figure("architecture.png",
-                                                                "architecture")],
-                                after=["The same diagram as a vector drawing: "
-                                       "architecture.svg."]))
+        sections.append(Section("Architecture", paragraphs=[
+            "The same diagram as a vector drawing, to zoom into: architecture.svg."],
+            figures=[Figure("architecture.png", "architecture", large=True)]))
     else:
         notes.append(f"No architecture diagram: {why}.")
     title = f"colonnade report: {name}"
