@@ -230,7 +230,7 @@ def summary_lines(d: Mapping[str, Any]) -> list[str]:
         return lines
     t, p, s = d["tasks"], d["parts"], d["seals"]
     lines.append(f"Tasks added: {_names(t['added'])}; retired: {_names(t['retired'])}; "
-                 f"retrained: {_names(t['retrained'])}.")
+                 f"retrained or otherwise changed: {_names(t['retrained'])}.")
     lines.append(f"Parts added: {_names(p['columns_added'] + p['adapters_added'])}; pruned: "
                  f"{_names(p['pruned'])}; merged: {_names(p['merged'])}.")
     for c in d["tensors"]["changed"]:
