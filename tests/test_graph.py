@@ -452,6 +452,17 @@ def test_compact_draws_the_input_once_and_the_legend_in_a_corner(n):
 
 
 @needs_dot
+def test_full_view_legend_sits_in_the_bottom_corner():
+    net = grown(DENSE, 3)
+    G = build_graph(net)
+    pos = dot_positions(to_dot(net, compact=False).source)  # y grows upwards in dot's JSON
+    layers = [pos[n] for n, d in G.nodes(data=True) if d["kind"] == "layer"]
+    legend = pos["legend"]
+    assert legend[0] > max(x for x, _y in layers)  # right of every column
+    assert legend[1] == pytest.approx(min(y for _x, y in layers))  # on the lowest layers' rank
+
+
+@needs_dot
 def test_compact_is_chosen_from_eight_tasks_on():
     for n, compact in ((7, False), (8, True)):
         groups = svg_groups(svg_of(grown(DENSE, n)))

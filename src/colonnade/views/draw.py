@@ -160,7 +160,9 @@ def _full(dot: Any, G: nx.DiGraph, focus: set[str] | None, show_removed: bool,
             attrs.update(xlabel=d["state"], fontsize="8", fontname=FONT)
         dot.edge(u, v, id=eid, tooltip=tip, arrowsize="0.8",
                  **css_class(f"lateral {d['state']} {mark(fade)}"), **attrs)
-    legend_node(dot, shown)
+    # Beside the last column's first layer: the bottom corner, clear of the input's edges.
+    last = columns[max(columns)][0] if columns else None
+    legend_node(dot, shown, beside=last)
 
 
 # ----------------------------------------------------------------------------- compact view
