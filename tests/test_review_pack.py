@@ -24,6 +24,7 @@ from safetensors.numpy import load_file, save_file
 
 from colonnade.app.diff import diff_workspaces
 from colonnade.app.evidence import seal_workspace, unseal_workspace
+from colonnade.app.lifecycle import retire_workspace
 from colonnade.app.trim import trim_workspace
 from colonnade.app.views import write_report
 from colonnade.app.workspace import grow_workspace
@@ -274,3 +275,13 @@ def test_report_since_has_the_changes_section(history, tmp_path):
     data = json.loads((out / "report.json").read_text())
     assert "## What changed since" in md and "Tasks added: perm2" in md
     assert data["changes"]["tasks"]["added"] == ["perm2"] and not (out / "report.pdf").exists()
+
+
+def test_diff_names_a_task_retired(history, tmp_path):
+    ws = tmp_path / "retired"
+    shutil.copytree(history / "three", ws)
+    retire_workspace(ws, "perm2", "line closed")
+    result = diff_workspaces(history / "three", ws)
+    assert result["tasks"]["retired"] == ["perm2"] and result["sealed_in_a"]["all_kept"]
+    n = len(store.load(history / "three").meta["history"])
+    assert diff_workspaces(ws, since=n)["tasks"]["retired"] == ["perm2"]  # from the record

@@ -71,15 +71,24 @@ def _task_parts(arch: Mapping[str, Any], task: str) -> list[str]:
     return own
 
 
+def _live(task: Mapping[str, Any] | None) -> bool:
+    return task is not None and task.get("state", "live") == "live"
+
+
 def _tasks(a: Snapshot, b: Snapshot, tensors: dict[str, Any]) -> dict[str, Any]:
     ta, tb = a.tasks, b.tasks
+    later = b.history[len(a.history):] if b.history[:len(a.history)] == a.history else []
+    stepped = {e.get("task") for e in later if isinstance(e, Mapping)
+               and e.get("step") == "task_retrained"}
     changed_keys = [c["key"] for c in tensors["changed"]]
     retrained = [t for t in ta if t in tb and any(
         k.startswith(p) for p in _task_parts(b.architecture, t) for k in changed_keys)]
     reshaped = [t for t in ta if t in tb and (ta[t].get("classes"), ta[t].get("mode")) !=
                 (tb[t].get("classes"), tb[t].get("mode"))]
-    return {"added": [t for t in tb if t not in ta], "retired": [t for t in ta if t not in tb],
-            "retrained": sorted(set(retrained) | set(reshaped), key=list(tb).index)}
+    return {"added": [t for t in tb if t not in ta],
+            "retired": [t for t in ta if _live(ta[t]) and not _live(tb.get(t))],
+            "retrained": sorted((set(retrained) | set(reshaped) | stepped) & set(tb),
+                                key=list(tb).index)}
 
 
 def _parts(a: Snapshot, b: Snapshot) -> dict[str, Any]:

@@ -106,6 +106,8 @@ def summary_section(net: ProgressiveNet, check: Mapping[str, Any] | None,
         entry = sealed.get(name)
         seal = f"v{entry.get('version')}" if entry else (
             "lifted" if seals_of(net, name) else "none")
+        if getattr(info, "state", "live") != "live":
+            seal += f" ({info.state})"
         probe_acc = (entry or {}).get("metrics", {}).get("accuracy") if entry else None
         val = ((records.get(name) or {}).get("train") or {}).get("val_accuracy")
         rows.append([name, info.mode, str(info.classes), str(info.column), seal,

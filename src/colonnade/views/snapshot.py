@@ -117,6 +117,10 @@ def _undo(arch: dict[str, Any], seals: dict[str, list[dict[str, Any]]],
                 arch["adapters"] = [a for a in arch["adapters"] if not (
                     a.get("kind") == "joint"
                     and set((a.get("extra") or {}).get("replaces") or []) & names)]
+        elif step == "task_retired":
+            for t in arch["tasks"]:
+                if t["name"] == task:
+                    t["state"] = "live"
         elif step == "task_sealed":
             versions = seals.get(task) or []
             seals[task] = [s for s in versions if s.get("version") != e.get("version")]
