@@ -35,7 +35,7 @@ from colonnade.app.workspace import predict_file
 from colonnade.cli import main
 from colonnade.costing import costs
 from colonnade.errors import SealedError, UsageError
-from colonnade.files import export, store
+from colonnade.files import artifact, store
 from colonnade.model.spec import parse_spec
 from colonnade.training.data import TaskData
 from colonnade.training.fit import evaluate, task_logits
@@ -157,11 +157,11 @@ def test_dropped_columns_leave_cost_predict_and_export(trimmed, tmp_path):
     predict_file(ws, "perm2", files["perm2"][1], out)
     assert np.array_equal(np.load(out)["logits"], expected.numpy())
     # export ships the smaller path, and it computes the same logits
-    blob = export.standalone_blob(net, "perm2")
+    blob = artifact.artifact_blob(net, ["perm2"])
     assert [c["index"] for c in blob["architecture"]["columns"]] == list(closure.columns)
-    model = export.standalone_model(blob)
+    model = artifact.artifact_model(blob)
     with torch.no_grad():
-        assert torch.allclose(model(x), expected, atol=1e-5)
+        assert torch.allclose(model(x)[0], expected, atol=1e-5)
 
 
 def test_target_params_stops_once_reached(tmp_path):
@@ -285,9 +285,9 @@ def test_trim_merge_is_accepted_within_tolerance_and_reloads(tmp_path):
     again = colonnade.load(ws)
     assert torch.equal(task_logits(again, "perm2", x), task_logits(back, "perm2", x))
     # and a standalone export computes the same logits through its joint adapter
-    model = export.standalone_model(export.standalone_blob(back, "perm2"))
+    model = artifact.artifact_model(artifact.artifact_blob(back, ["perm2"]))
     with torch.no_grad():
-        assert torch.allclose(model(x), task_logits(back, "perm2", x), atol=1e-5)
+        assert torch.allclose(model(x)[0], task_logits(back, "perm2", x), atol=1e-5)
 
 
 # ----------------------------------------------------------------------------- trust

@@ -62,6 +62,8 @@ _PUBLIC: dict[str, tuple[str, str | None]] = {
     "usage_workspace": ("colonnade.app.trim", "usage_workspace"),
     "trim_workspace": ("colonnade.app.trim", "trim_workspace"),
     "export_task": ("colonnade.app.export", "export_task"),
+    "export_artifact": ("colonnade.app.export", "export_artifact"),
+    "check_artifact": ("colonnade.app.export", "check_artifact"),
 }
 
 __all__ = ["__version__", "ColonnadeError", "SpecError", "DataError", "WorkspaceError",

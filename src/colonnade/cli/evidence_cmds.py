@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 from typing import Any
 
+from ..errors import UsageError
 from .argtypes import (
     non_negative_float,
 )
@@ -32,6 +33,8 @@ def _diff(value: float | None) -> str:
 
 
 def _check(args: argparse.Namespace) -> int:
+    if args.artifact is not None:
+        return _check_artifact(args)
     from ..app.evidence import check_workspace
 
     report = check_workspace(args.workspace, task=args.task, tolerance=args.tolerance,
@@ -59,6 +62,39 @@ def _check(args: argparse.Namespace) -> int:
         print(f"all {n} sealed task(s) pass: {exact} exact, {n - exact} within the tolerance")
     else:
         print(f"{n - passed} of {n} sealed task(s) fail")
+    return 0 if report.passed else 1
+
+
+def _check_artifact(args: argparse.Namespace) -> int:
+    from ..app.export import check_artifact
+
+    if args.task is not None or args.probe is not None:
+        raise UsageError("--artifact checks every task the file holds, on the probes "
+                         "recorded at export; leave out --task and --probe")
+    report = check_artifact(args.workspace, args.artifact, tolerance=args.tolerance)
+    if args.json:
+        print_json(report.to_dict())
+        return 0 if report.passed else 1
+    if report.tasks:
+        print(table([[t.task, t.verdict, _diff(t.max_abs_diff), t.samples,
+                      "-" if t.predictions_agree is None else ("yes" if t.predictions_agree
+                                                               else "no")]
+                     for t in report.tasks],
+                    ["task", "verdict", "max |diff|", "samples", "classes agree"]))
+    for t in report.tasks:
+        for sentence in t.failures:
+            print(f"{t.task}: {sentence}.")
+    for sentence in report.notes:
+        print(f"note: {sentence}.")
+    n, exact = len(report.tasks), sum(t.verdict == "exact" for t in report.tasks)
+    if not n:
+        print("the artifact fails: it is not the file that was exported")
+    elif exact == n:
+        print(f"the artifact checks exact: all {n} task(s) bit-identical to the export")
+    elif report.passed:
+        print(f"the artifact passes: {exact} task(s) exact, {n - exact} within the tolerance")
+    else:
+        print(f"the artifact fails: {n - sum(t.passed for t in report.tasks)} of {n} task(s)")
     return 0 if report.passed else 1
 
 
@@ -91,6 +127,9 @@ def add_parsers(verb: Any) -> None:
     p.add_argument("--tolerance", type=non_negative_float,
                    help="accept logits within this absolute difference (for other hardware)")
     p.add_argument("--probe", help="with --task: read the probe from this file instead")
+    p.add_argument("--artifact", metavar="FILE",
+                   help="check an exported artifact instead: its digest against the history, "
+                        "its outputs on the recorded probes, in the recorded runtime")
     p.add_argument("--json", action="store_true")
 
     p = verb("unseal", _unseal, "lift a task's seal, with a reason kept in the history")

@@ -1,22 +1,22 @@
-"""Run one exported task with torch alone: the loader of ``colonnade export`` .pt files.
+"""Run an exported artifact with torch alone: the loader of ``colonnade export`` .pt files.
 
 This file imports only torch and the standard library, never the rest of colonnade, so
 it can be copied next to a service that has nothing but torch installed::
 
-    from standalone import load_task
-    model, meta = load_task("pump_a_faults.pt")   # torch.load(..., weights_only=True)
-    logits = model(x)                               # x: (N, *meta["input_shape"])
+    from standalone import load_artifact
+    model, meta = load_artifact("pumps.pt")   # torch.load(..., weights_only=True)
+    logits = model(x)                          # one tensor per task, in meta["tasks"] order
 
 The file is a plain dictionary written by ``torch.save``: ``format``, ``version``,
-``task``, ``classes``, ``class_names`` (or None), ``normalization`` (the input's
-``{mean, std}`` per channel, or None), ``input_shape``, ``architecture`` (plain data
-naming torch layers and their arguments, the column order, each lateral adapter's
-sources and target, the input normalisation's buffer shape),
-``state`` (tensors by the grown network's own ``state_dict`` keys, only those of the
-task's closure) and ``meta`` (closure digest, seal, versions). ``weights_only=True`` loading
-accepts exactly such dictionaries and runs no code. The forward below repeats the grown
-network's operations in the same order, so the logits are bit-identical on the same
-device, dtype, thread count and batch.
+``architecture`` (plain data naming torch layers and their arguments, the column order,
+each lateral adapter's sources and target, each task's head), ``state`` (tensors by the
+grown network's own ``state_dict`` keys, only those of the tasks' joint closure) and
+``meta`` (tasks and class names, input shape, closure digests, seals, versions).
+``weights_only=True`` loading accepts exactly such dictionaries and runs no code. The
+forward below repeats the grown network's operations in the same order, so the logits
+are bit-identical on the same device, dtype, thread count and batch.
+
+Files of the first format (``colonnade-task`` version 1, one task) still load.
 """
 
 from __future__ import annotations
@@ -27,10 +27,12 @@ from typing import Any
 import torch
 import torch.nn as nn
 
-__all__ = ["FORMAT", "VERSION", "LAYERS", "build_layer", "TaskModel", "load_task"]
+__all__ = ["FORMAT", "VERSION", "LAYERS", "build_layer", "ArtifactModel", "load_artifact",
+           "load_task"]
 
-FORMAT = "colonnade-task"
+FORMAT = "colonnade-artifact"
 VERSION = 1
+_LEGACY = ("colonnade-task", 1)  # one task per file, the format before artifacts
 
 # The torch layers an exported architecture may name; nothing else can be built.
 LAYERS: dict[str, type[nn.Module]] = {cls.__name__: cls for cls in (
@@ -87,43 +89,43 @@ class _Column(nn.Module):
         self.blocks = nn.ModuleList(_Block(b) for b in desc["blocks"])
 
 
-class _InputNorm(nn.Module):
-    """The grown network's input normalisation: ``(x - mean) / std`` per channel."""
-
-    def __init__(self, view: list[int]) -> None:
-        super().__init__()
-        self.register_buffer("mean", torch.zeros(view))
-        self.register_buffer("std", torch.ones(view))
-
-    def forward(self, x: torch.Tensor) -> torch.Tensor:
-        return (x - self.mean) / self.std
+def _legacy_architecture(arch: dict[str, Any]) -> dict[str, Any]:
+    """A one-task architecture of the first format, in the artifact's form."""
+    return {"columns": arch["columns"], "adapters": arch["adapters"],
+            "tasks": [{"task": arch["task"], "head": arch["head"],
+                       "head_column": arch["head_column"]}]}
 
 
-class TaskModel(nn.Module):
-    """One task's closure: its columns, the live adapters between them, its head."""
+class ArtifactModel(nn.Module):
+    """Tasks' joint closure: columns, the live adapters between them, one head per task.
+
+    ``forward(x)`` returns a tuple of logits, one per task in ``self.tasks`` order; each
+    column is computed once, as the grown network's ``forward_all`` does.
+    """
 
     def __init__(self, architecture: dict[str, Any]) -> None:
         super().__init__()
-        self.task = architecture["task"]
-        # Input normalisation (its buffers ride in the state as input_norm.mean/std).
-        view = architecture.get("input_norm")
-        self.input_norm = nn.Identity() if view is None else _InputNorm([int(v) for v in view])
+        if "tasks" not in architecture:
+            architecture = _legacy_architecture(architecture)
+        self.tasks = [str(t["task"]) for t in architecture["tasks"]]
+        self.head_column = {str(t["task"]): int(t["head_column"])
+                            for t in architecture["tasks"]}
         self.order = [int(c["index"]) for c in architecture["columns"]]
-        self.head_column = int(architecture["head_column"])
         self.columns = nn.ModuleDict({str(c["index"]): _Column(c)
                                       for c in architecture["columns"]})
         self.adapters = nn.ModuleDict()
         self.into: dict[tuple[int, int], list[tuple[str, list[int]]]] = {}
-        self.into_head: list[tuple[str, list[int]]] = []
+        self.into_head: dict[str, list[tuple[str, list[int]]]] = {t: [] for t in self.tasks}
         for a in architecture["adapters"]:  # in the order the grown network adds them
             self.adapters[a["key"]] = _Steps(a["steps"])
             sources = [int(j) for j in a["sources"]]
             if a["head"] is not None:
-                self.into_head.append((a["key"], sources))
+                self.into_head[str(a["head"])].append((a["key"], sources))
             else:
                 self.into.setdefault((int(a["column"]), int(a["block"])), []).append(
                     (a["key"], sources))
-        self.heads = nn.ModuleDict({self.task: build_layer(architecture["head"])})
+        self.heads = nn.ModuleDict({str(t["task"]): build_layer(t["head"])
+                                    for t in architecture["tasks"]})
 
     def _lateral(self, key: str, sources: list[int], outs: dict[int, list[torch.Tensor]],
                  index: int) -> torch.Tensor:
@@ -132,9 +134,8 @@ class TaskModel(nn.Module):
             return self.adapters[key](outs[sources[0]][index])
         return self.adapters[key](torch.cat([outs[j][index] for j in sources], dim=1))
 
-    def forward(self, x: torch.Tensor) -> torch.Tensor:
+    def forward(self, x: torch.Tensor) -> tuple[torch.Tensor, ...]:
         outs: dict[int, list[torch.Tensor]] = {}
-        x = self.input_norm(x)
         for k in self.order:
             col = self.columns[str(k)]
             h = col.stem(x)
@@ -146,24 +147,48 @@ class TaskModel(nn.Module):
                 h = block.post(z)
                 hs.append(h)
             outs[k] = hs
-        logits = self.heads[self.task](outs[self.head_column][-1])
-        for key, sources in self.into_head:
-            logits = logits + self._lateral(key, sources, outs, -1)
-        return logits
+        every = []
+        for task in self.tasks:
+            logits = self.heads[task](outs[self.head_column[task]][-1])
+            for key, sources in self.into_head[task]:
+                logits = logits + self._lateral(key, sources, outs, -1)
+            every.append(logits)
+        return tuple(every)
 
 
-def load_task(path: str | Path, map_location: str | torch.device = "cpu",
-              ) -> tuple[TaskModel, dict[str, Any]]:
-    """The exported task as an eval-mode module, and the file's metadata."""
+class _OneTask(nn.Module):
+    """An artifact of one task, called as ``model(x) -> logits`` (the first format's API)."""
+
+    def __init__(self, model: ArtifactModel) -> None:
+        super().__init__()
+        self.model = model
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        return self.model(x)[0]
+
+
+def load_artifact(path: str | Path, map_location: str | torch.device = "cpu",
+                  ) -> tuple[ArtifactModel, dict[str, Any]]:
+    """The artifact as an eval-mode module returning one tensor per task, and its metadata."""
     blob = torch.load(path, map_location=map_location, weights_only=True)
-    if not isinstance(blob, dict) or blob.get("format") != FORMAT:
-        raise ValueError(f"{path}: not an exported colonnade task")
-    if blob.get("version") != VERSION:
-        raise ValueError(f"{path}: format version {blob.get('version')} is not {VERSION}")
-    model = TaskModel(blob["architecture"])
+    kind = (blob.get("format"), blob.get("version")) if isinstance(blob, dict) else None
+    if kind not in ((FORMAT, VERSION), _LEGACY):
+        raise ValueError(f"{path}: not an exported colonnade artifact of a format this "
+                         f"loader reads ({FORMAT} version {VERSION})")
+    model = ArtifactModel(blob["architecture"])
     model.load_state_dict(blob["state"], strict=True)
     model.requires_grad_(False)
     model.eval()
-    meta = {k: blob[k] for k in ("task", "classes", "input_shape")}
-    meta.update(blob.get("meta") or {})
+    meta = dict(blob.get("meta") or {})
+    if kind == _LEGACY:
+        meta.update({k: blob[k] for k in ("task", "classes", "input_shape")})
     return model, meta
+
+
+def load_task(path: str | Path, map_location: str | torch.device = "cpu",
+              ) -> tuple[nn.Module, dict[str, Any]]:
+    """A one-task file as an eval-mode module ``model(x) -> logits``, and its metadata."""
+    model, meta = load_artifact(path, map_location)
+    if len(model.tasks) != 1:
+        raise ValueError(f"{path}: holds {len(model.tasks)} tasks; use load_artifact")
+    return _OneTask(model).eval(), meta

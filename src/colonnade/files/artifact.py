@@ -1,0 +1,238 @@
+"""What ships: the joint closure of one or more tasks, as plain data and a torch .pt file.
+
+An artifact holds the tasks' joint closure and nothing else: the columns their heads
+reach, the live adapters between them (trimmed adapters are gone) and one head per
+task, under the grown network's own ``state_dict`` keys, so each task's closure digest
+equals its seal's. Its architecture is plain data naming torch layers (standalone.py
+rebuilds it with torch alone and runs it as ``forward_all`` does: each column once, one
+output per task). Adapter kinds beyond linear and nonlinear can take part by giving
+their module a method ``export_steps()`` that returns ``[(op, name), ...]`` with ``op``
+either ``"scale"`` (multiply by the scalar parameter ``name``) or ``"module"`` (apply
+the child module ``name``), applied in order.
+
+The metadata (``artifact_meta``) travels in every format: task names and class names,
+the input shape, each task's closure digest and seal version, the workspace's record
+head, colonnade's version, and for int8 the calibration data's digest.
+"""
+
+from __future__ import annotations
+
+import io
+import secrets
+from typing import Any
+
+import torch
+import torch.nn as nn
+
+from .._version import __version__
+from ..clock import now
+from ..errors import ColonnadeError, SealedError, UsageError
+from ..model.adapters import JointAdapter, LinearAdapter, NonlinearAdapter
+from ..model.digest import closure_digests
+from ..model.network import ProgressiveNet
+from .standalone import FORMAT, LAYERS, VERSION, ArtifactModel
+
+__all__ = ["ExportError", "describe_layer", "artifact_architecture", "artifact_state",
+           "artifact_meta", "artifact_blob", "artifact_model", "torch_bytes", "joint_closure"]
+
+
+class ExportError(ColonnadeError):
+    """A task holds a part that the artifact format cannot describe."""
+
+
+# Constructor arguments of each exportable layer, read back from the module itself.
+_ARGS: dict[str, tuple[str, ...]] = {
+    "Linear": ("in_features", "out_features"),
+    "Conv1d": ("in_channels", "out_channels", "kernel_size", "stride", "padding", "dilation",
+               "groups", "padding_mode"),
+    "BatchNorm1d": ("num_features", "eps", "momentum", "affine", "track_running_stats"),
+    "LayerNorm": ("normalized_shape", "eps", "elementwise_affine"),
+    "GroupNorm": ("num_groups", "num_channels", "eps", "affine"),
+    "GELU": ("approximate",),
+    "LeakyReLU": ("negative_slope",),
+    "Dropout": ("p",),
+    "MaxPool1d": ("kernel_size", "stride", "padding", "dilation", "ceil_mode"),
+    "AvgPool1d": ("kernel_size", "stride", "padding", "ceil_mode", "count_include_pad"),
+    "AdaptiveAvgPool1d": ("output_size",),
+    "Flatten": ("start_dim", "end_dim"),
+}
+_ARGS["Conv2d"] = _ARGS["Conv1d"]
+_ARGS["BatchNorm2d"] = _ARGS["BatchNorm1d"]
+_ARGS["MaxPool2d"] = _ARGS["MaxPool1d"]
+_ARGS["AvgPool2d"] = _ARGS["AvgPool1d"]
+_ARGS["AdaptiveAvgPool2d"] = _ARGS["AdaptiveAvgPool1d"]
+
+
+def _plain(value: Any) -> Any:
+    return list(value) if isinstance(value, tuple) else value
+
+
+def describe_layer(module: nn.Module) -> dict[str, Any]:
+    """Plain data that ``standalone.build_layer`` turns back into the same layer."""
+    if type(module) is nn.Sequential:
+        return {"type": "Sequential", "layers": [describe_layer(m) for m in module]}
+    name = type(module).__name__
+    if LAYERS.get(name) is not type(module):  # exact classes only: no custom forward
+        raise ExportError(f"layer {name} cannot be exported; the artifact format knows "
+                          f"{', '.join(sorted(LAYERS))}")
+    args = {a: _plain(getattr(module, a)) for a in _ARGS.get(name, ())}
+    if name in ("Linear", "Conv1d", "Conv2d"):
+        args["bias"] = module.bias is not None
+    if name == "LayerNorm":
+        args["bias"] = getattr(module, "bias", None) is not None
+    return {"type": name, "args": args}
+
+
+def _adapter_steps(key: str, module: nn.Module) -> list[dict[str, Any]]:
+    if type(module) is LinearAdapter:
+        order = [("module", "U")]
+    elif type(module) is NonlinearAdapter:
+        order = [("scale", "alpha"), ("module", "V"), ("module", "act"), ("module", "U")]
+    elif type(module) is JointAdapter:
+        order = [("module", "V"), ("module", "U")]
+    elif callable(getattr(module, "export_steps", None)):
+        order = list(module.export_steps())
+    else:
+        raise ExportError(f"adapter {key} of kind {type(module).__name__} cannot be exported; "
+                          f"give it an export_steps() method (see files/artifact.py)")
+    steps = []
+    for op, name in order:
+        if op == "scale":
+            steps.append({"op": "scale", "name": name,
+                          "shape": list(getattr(module, name).shape)})
+        else:
+            steps.append({"op": "module", "name": name,
+                          "layer": describe_layer(getattr(module, name))})
+    return steps
+
+
+def _check_tasks(net: ProgressiveNet, tasks: list[str]) -> list[str]:
+    if not tasks:
+        raise UsageError("name at least one task to export")
+    seen: list[str] = []
+    for task in tasks:
+        net.task(task)  # unknown: one sentence listing the tasks
+        if task in seen:
+            raise UsageError(f"task {task!r} is named twice; name each task once")
+        seen.append(task)
+    return [t for t in net.tasks if t in seen]  # growth order, whatever order was asked
+
+
+def joint_closure(net: ProgressiveNet, tasks: list[str]) -> tuple[list[int], list[str]]:
+    """Columns and adapters (block and head) that the tasks' outputs depend on, sorted."""
+    columns: set[int] = set()
+    adapters: set[str] = set()
+    for task in tasks:
+        closure = net.closure(task)
+        columns.update(closure.columns)
+        adapters.update(closure.adapters)
+    return sorted(columns), sorted(adapters)
+
+
+def artifact_architecture(net: ProgressiveNet, tasks: list[str]) -> dict[str, Any]:
+    """The joint closure of ``tasks`` as plain data: columns, live adapters, heads."""
+    tasks = _check_tasks(net, tasks)
+    columns, adapters = [], []
+    for k in joint_closure(net, tasks)[0]:
+        col = net.columns[k]
+        columns.append({
+            "index": k,
+            "stem": [describe_layer(m) for m in col.stem],
+            "blocks": [{"weighted": describe_layer(b.weighted),
+                        "post": [describe_layer(m) for m in b.post]} for b in col.blocks],
+        })
+        for b in range(len(col.blocks)):
+            for key, _ in net.adapters_into_block(k, b):
+                adapters.append({"key": key, "sources": list(net.adapter_sources(key)),
+                                 "column": k, "block": b, "head": None,
+                                 "steps": _adapter_steps(key, net.adapters[key])})
+    heads = []
+    for task in tasks:
+        for key, _ in net.adapters_into_head(task):
+            adapters.append({"key": key, "sources": list(net.adapter_sources(key)),
+                             "column": None, "block": None, "head": task,
+                             "steps": _adapter_steps(key, net.adapters[key])})
+        heads.append({"task": task, "head": describe_layer(net.heads[task]),
+                      "head_column": net.task(task).column})
+    return {"tasks": heads, "columns": columns, "adapters": adapters}
+
+
+def artifact_state(net: ProgressiveNet, tasks: list[str]) -> dict[str, torch.Tensor]:
+    """Own copies (CPU, contiguous) of the joint closure's tensors, and nothing else."""
+    state: dict[str, torch.Tensor] = {}
+    for task in tasks:
+        state.update(net.closure_state(task))
+    return {k: v.detach().cpu().clone().contiguous() for k, v in state.items()}
+
+
+def _seal_of(net: ProgressiveNet, task: str) -> dict[str, Any] | None:
+    """The task's newest active seal as recorded in ``net.meta``, read defensively."""
+    seals = net.meta.get("seals")
+    versions = seals.get(task) if isinstance(seals, dict) else None
+    if not isinstance(versions, list) or not versions or not isinstance(versions[-1], dict):
+        return None
+    entry = versions[-1]
+    if entry.get("unsealed"):
+        return None
+    closure = entry.get("closure") if isinstance(entry.get("closure"), dict) else {}
+    return {"version": entry.get("version"), "time": entry.get("time"),
+            "closure_sha256": closure.get("sha256"), "entry_sha256": entry.get("entry_sha256")}
+
+
+def _class_names(net: ProgressiveNet, task: str) -> list[str] | None:
+    names = getattr(net.task(task), "class_names", None)
+    return [str(n) for n in names] if names else None
+
+
+def _record_head(net: ProgressiveNet) -> str | None:
+    """The digest at the head of the workspace's record, where the record keeps one."""
+    record = net.meta.get("record")
+    head = record.get("head") if isinstance(record, dict) else None
+    return str(head) if head else None
+
+
+def artifact_meta(net: ProgressiveNet, tasks: list[str], precision: str = "float32",
+                  calibration: dict[str, Any] | None = None) -> dict[str, Any]:
+    """Everything a device needs besides the weights, as plain data (JSON-ready).
+
+    Refuses (SealedError) a sealed task whose closure no longer matches its seal.
+    """
+    tasks = _check_tasks(net, tasks)
+    rows = []
+    for task in tasks:
+        digest, _ = closure_digests(net.closure_state(task))
+        seal = _seal_of(net, task)
+        if seal is not None and seal["closure_sha256"] not in (None, digest):
+            raise SealedError(f"task {task!r} no longer matches its seal v{seal['version']}; "
+                              f"run 'colonnade check' on the workspace before exporting")
+        rows.append({"name": task, "output": task, "classes": net.task(task).classes,
+                     "class_names": _class_names(net, task), "closure_sha256": digest,
+                     "seal": seal})
+    return {"format": FORMAT, "version": VERSION, "export_id": secrets.token_hex(8),
+            "tasks": rows, "input_shape": list(net.input_shape), "normalize": None,
+            "precision": precision, "calibration": calibration, "record_head": _record_head(net),
+            "spec": net.spec.name, "colonnade": __version__,
+            "torch": str(torch.__version__), "exported": now()}
+
+
+def artifact_blob(net: ProgressiveNet, tasks: list[str], meta: dict[str, Any] | None = None,
+                  ) -> dict[str, Any]:
+    """The dictionary a .pt artifact holds (see standalone.py)."""
+    tasks = _check_tasks(net, tasks)
+    return {"format": FORMAT, "version": VERSION,
+            "architecture": artifact_architecture(net, tasks),
+            "state": artifact_state(net, tasks),
+            "meta": meta if meta is not None else artifact_meta(net, tasks)}
+
+
+def artifact_model(blob: dict[str, Any]) -> ArtifactModel:
+    """The blob's model, frozen, in eval mode: one output per task."""
+    model = ArtifactModel(blob["architecture"])
+    model.load_state_dict(blob["state"], strict=True)
+    return model.requires_grad_(False).eval()
+
+
+def torch_bytes(blob: dict[str, Any]) -> bytes:
+    buf = io.BytesIO()
+    torch.save(blob, buf)
+    return buf.getvalue()
