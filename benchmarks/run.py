@@ -1,7 +1,7 @@
 """Speed of colonnade's own machinery, measured side by side in one run.
 
 Run with ``make bench`` (or ``.venv/bin/python benchmarks/run.py``). Prints the machine,
-the versions, and four comparisons, each as a ratio of two timings taken alternately in
+the versions, and five comparisons, each as a ratio of two timings taken alternately in
 this same process, beside the ideal ratio from operation counts where one exists:
 
 1. an epoch of training task 6 with the frozen-activation cache against without it,
@@ -9,7 +9,9 @@ this same process, beside the ideal ratio from operation counts where one exists
 2. all six tasks in one ``forward_all`` pass against six per-task calls;
 3. the grown network's forward against a hand-written plain PyTorch module with the
    same layers and weights, at batch 1 and 256;
-4. achieved GFLOP/s of a wide dense column at batch 256 against a large fp32 matmul.
+4. achieved GFLOP/s of a wide dense column at batch 256 against a large fp32 matmul;
+5. shipped artifacts in onnxruntime: one all-task file against one file per task, int8
+   against float32, and their file sizes (benchmarks/shipping.py).
 
 Operation counts come from torch.utils.flop_counter.FlopCounterMode (matmuls and
 convolutions; one multiply-accumulate is 2 FLOPs), not from colonnade's own accounting.
@@ -37,6 +39,8 @@ import torch.nn.functional as F
 from torch.utils.flop_counter import FlopCounterMode
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "src"))
+
+from shipping import bench_shipping  # noqa: E402 (benchmarks/shipping.py, beside this file)
 
 from colonnade import __version__  # noqa: E402
 from colonnade.model.network import ProgressiveNet  # noqa: E402
@@ -307,6 +311,8 @@ def main(argv: list[str] | None = None) -> int:
     bench_plain(net, args.quick)
     print("4. achieved throughput of one wide dense column:")
     bench_gflops(args.quick)
+    print("5. shipped artifacts in onnxruntime, one thread (the demo's template, 12 tasks):")
+    bench_shipping(args.quick, verdict)
     print(f"total {time.perf_counter() - start:.0f} s")
     return 0
 

@@ -15,7 +15,7 @@ import onnx
 import onnxruntime as ort
 import pytest
 import torch
-from test_forward_all import CONV1D, DENSE, grown  # noqa: F401 (CONV1D: default)
+from test_forward_all import CONV1D, DENSE, grown
 
 from colonnade.app import export as app_export
 from colonnade.cli import main

@@ -61,6 +61,10 @@ class Runner:
         return {"name": self.name, "version": runtime_version(self.name),
                 "threads": self.threads, "batch": self.batch}
 
+    def run_batch(self, xb: np.ndarray) -> list[np.ndarray]:
+        """One call on one batch, as given: the outputs in ``self.outputs`` order."""
+        return list(self._call(xb))
+
     def run(self, x: np.ndarray | torch.Tensor) -> dict[str, np.ndarray]:
         rows = x.numpy() if isinstance(x, torch.Tensor) else np.asarray(x)
         rows = np.ascontiguousarray(rows, dtype=np.float32)

@@ -1,0 +1,117 @@
+"""int8 artifacts on scikit-learn's digits: measured against float, refused when poor.
+
+References: scikit-learn's bundled handwritten digits (permuted-pixel tasks, conftest.py)
+and their labels for accuracy; onnxruntime, which runs the int8 file; onnx's parser for
+the QDQ form and the bytes the file holds; ``numel()`` for the parameter count behind
+the cost ledger's int8 bytes (1 B a parameter, the ledger's stated convention).
+"""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import onnx
+import pytest
+import torch
+from conftest import DIGITS_SPEC, permuted_digit_tasks, task_data
+
+import colonnade
+from colonnade.cli import main
+from colonnade.evidence.artifact import DEFAULT_ACCEPT_DROP
+from colonnade.files.store import create, load, read_manifest, save
+from colonnade.model.spec import parse_spec
+from colonnade.training.validation import store_validation
+
+
+@pytest.fixture(scope="module")
+def digits_ws(tmp_path_factory):
+    """Two permuted-digit tasks grown, validation data kept, both sealed on their test split."""
+    tmp = tmp_path_factory.mktemp("int8")
+    raw = dict(DIGITS_SPEC, train=dict(DIGITS_SPEC["train"], epochs=12))
+    net = colonnade.ProgressiveNet(parse_spec(raw))
+    tasks = permuted_digit_tasks(2)
+    for t in tasks:
+        data = task_data(t)
+        colonnade.grow(net, t["name"], data, progress=False)
+        store_validation(net, t["name"], data.x_val, data.y_val)
+    ws = tmp / "ws"
+    create(parse_spec(raw), ws)
+    save(net, ws)
+    for t in tasks:
+        np.savez(tmp / f"{t['name']}_probe.npz", x=t["x_test"], y=t["y_test"])
+        assert main(["seal", str(ws), "--task", t["name"], "--probe",
+                     str(tmp / f"{t['name']}_probe.npz")]) == 0
+    return tmp, ws, tasks
+
+
+def test_int8_loses_less_than_a_point_and_checks_exact(digits_ws, capsys):
+    tmp, ws, tasks = digits_ws
+    out = tmp / "digits_int8.onnx"
+    capsys.readouterr()
+    assert main(["export", str(ws), "--all", "-o", str(out), "--int8"]) == 0
+    printed = capsys.readouterr().out
+    entry = [e for e in read_manifest(ws)["history"] if e.get("step") == "artifact_exported"][-1]
+    for t in tasks:
+        row = entry["tasks_report"][t["name"]]
+        drop = 100 * (row["workspace_accuracy"] - row["artifact_accuracy"])
+        print(t["name"], row)  # the figures, for the note
+        assert drop <= DEFAULT_ACCEPT_DROP, (t["name"], drop)
+        assert row["agreement"] >= 0.97  # measured here: 0.99 and above
+        assert row["probe"]["source"] == "seal" and row["samples"] == len(t["y_test"])
+        assert any(line.startswith(t["name"] + " ") for line in printed.splitlines())
+    # QDQ form, per onnx's own parser: int8 weights between Quantize/DequantizeLinear pairs
+    proto = onnx.load(out)
+    ops = {n.op_type for n in proto.graph.node}
+    assert {"QuantizeLinear", "DequantizeLinear"} <= ops
+    assert any(t.data_type == onnx.TensorProto.INT8 for t in proto.graph.initializer)
+    meta = json.loads({p.key: p.value for p in proto.metadata_props}["colonnade.artifact"])
+    assert meta["precision"] == "int8" and len(meta["calibration"]["sha256"]) == 64
+    assert meta["calibration"]["source"].startswith("validation data kept in the workspace")
+    # the size report: the ledger's int8 bytes are 1 B for each parameter (numel)
+    net = load(ws)
+    params = sum(p.numel() for p in net.parameters())
+    assert f"int8 weight bytes {params:,} B" in printed
+    assert f"file size {out.stat().st_size:,} B" in printed
+    capsys.readouterr()
+    assert main(["check", str(ws), "--artifact", str(out)]) == 0
+    assert "checks exact" in capsys.readouterr().out
+
+
+def test_poor_calibration_is_refused_unless_accepted(digits_ws, capsys):
+    tmp, ws, tasks = digits_ws
+    d = task_data(tasks[0])
+    # A deliberately poor calibration set: one row of one class (a "7"); the ranges it
+    # sets clip most other digits' activations. Measured here: 15 to 20 points lost.
+    one = d.x_val[d.y_val == 7][:1].numpy()
+    np.savez(tmp / "one_seven.npz", x=one)
+    manifest = (ws / "manifest.yaml").read_bytes()
+    out = tmp / "poor.onnx"
+    capsys.readouterr()
+    args = ["export", str(ws), "--all", "-o", str(out), "--int8", "--calibrate",
+            str(tmp / "one_seven.npz")]
+    assert main(args) == 1
+    err = capsys.readouterr().err
+    assert "nothing written: sealed task" in err and "accuracy points in int8" in err
+    assert err.count("\n") == 1 and "Traceback" not in err
+    assert not out.exists() and (ws / "manifest.yaml").read_bytes() == manifest
+    assert main([*args, "--accept-drop", "100"]) == 0
+    assert out.exists()
+
+
+def test_calibration_digest_names_the_data(digits_ws):
+    tmp, ws, tasks = digits_ws
+    x = torch.from_numpy(tasks[1]["x_test"])
+    np.savez(tmp / "cal.npz", x=x.numpy())
+    r = colonnade.export_artifact(ws, tmp / "p1.onnx", task="perm1", int8=True,
+                                  calibrate=tmp / "cal.npz")
+    import hashlib
+    import struct
+    # the tensor record of digest.py, rebuilt here from its documented layout
+    rows = np.ascontiguousarray(x.numpy(), dtype=np.float32)
+    def field(b):
+        return struct.pack("<Q", len(b)) + b
+    record = (field(b"calibration") + field(b"torch.float32")
+              + field(struct.pack(f"<{rows.ndim}Q", *rows.shape)) + field(rows.tobytes()))
+    assert r["meta"]["calibration"]["sha256"] == hashlib.sha256(record).hexdigest()
+    assert r["meta"]["calibration"]["samples"] == len(rows)
