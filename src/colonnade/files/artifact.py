@@ -36,6 +36,9 @@ __all__ = ["ExportError", "describe_layer", "artifact_architecture", "artifact_s
            "artifact_meta", "artifact_blob", "artifact_model", "torch_bytes", "joint_closure"]
 
 
+_NORM = "input_norm."  # state_dict prefix of the network's input normalisation
+
+
 class ExportError(ColonnadeError):
     """A task holds a part that the artifact format cannot describe."""
 
@@ -154,15 +157,25 @@ def artifact_architecture(net: ProgressiveNet, tasks: list[str]) -> dict[str, An
                              "steps": _adapter_steps(key, net.adapters[key])})
         heads.append({"task": task, "head": describe_layer(net.heads[task]),
                       "head_column": net.task(task).column})
-    return {"tasks": heads, "columns": columns, "adapters": adapters}
+    normalized = any(k.startswith(_NORM) for k in net.state_dict())
+    return {"tasks": heads, "columns": columns, "adapters": adapters,
+            "normalize_shape": list(net.input_shape) if normalized else None}
 
 
 def artifact_state(net: ProgressiveNet, tasks: list[str]) -> dict[str, torch.Tensor]:
-    """Own copies (CPU, contiguous) of the joint closure's tensors, and nothing else."""
-    state: dict[str, torch.Tensor] = {}
+    """Own copies (CPU, contiguous) of the joint closure's tensors, and nothing else.
+
+    The input normalisation (``input_norm.*``, where the spec has one) feeds every task.
+    """
+    state = {k: v for k, v in net.state_dict().items() if k.startswith(_NORM)}
     for task in tasks:
         state.update(net.closure_state(task))
     return {k: v.detach().cpu().clone().contiguous() for k, v in state.items()}
+
+
+def _normalization(net: ProgressiveNet) -> dict[str, list[float]] | None:
+    values = getattr(net, "normalization", None)
+    return dict(values) if isinstance(values, dict) else None
 
 
 def _seal_of(net: ProgressiveNet, task: str) -> dict[str, Any] | None:
@@ -209,7 +222,8 @@ def artifact_meta(net: ProgressiveNet, tasks: list[str], precision: str = "float
                      "class_names": _class_names(net, task), "closure_sha256": digest,
                      "seal": seal})
     return {"format": FORMAT, "version": VERSION, "export_id": secrets.token_hex(8),
-            "tasks": rows, "input_shape": list(net.input_shape), "normalize": None,
+            "tasks": rows, "input_shape": list(net.input_shape),
+            "normalize": _normalization(net),
             "precision": precision, "calibration": calibration, "record_head": _record_head(net),
             "spec": net.spec.name, "colonnade": __version__,
             "torch": str(torch.__version__), "exported": now()}

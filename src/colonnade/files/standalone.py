@@ -89,6 +89,19 @@ class _Column(nn.Module):
         self.blocks = nn.ModuleList(_Block(b) for b in desc["blocks"])
 
 
+class _Normalize(nn.Module):
+    """The network's input normalisation, ``(x - mean) / std`` per channel (two buffers)."""
+
+    def __init__(self, shape: list[int]) -> None:
+        super().__init__()
+        view = (int(shape[0]),) + (1,) * (len(shape) - 1)  # broadcast over (C, ...)
+        self.register_buffer("mean", torch.zeros(view))
+        self.register_buffer("std", torch.ones(view))
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        return (x - self.mean) / self.std
+
+
 def _legacy_architecture(arch: dict[str, Any]) -> dict[str, Any]:
     """A one-task architecture of the first format, in the artifact's form."""
     return {"columns": arch["columns"], "adapters": arch["adapters"],
@@ -108,6 +121,8 @@ class ArtifactModel(nn.Module):
         if "tasks" not in architecture:
             architecture = _legacy_architecture(architecture)
         self.tasks = [str(t["task"]) for t in architecture["tasks"]]
+        shape = architecture.get("normalize_shape")
+        self.input_norm = _Normalize(shape) if shape else nn.Identity()
         self.head_column = {str(t["task"]): int(t["head_column"])
                             for t in architecture["tasks"]}
         self.order = [int(c["index"]) for c in architecture["columns"]]
@@ -136,6 +151,7 @@ class ArtifactModel(nn.Module):
 
     def forward(self, x: torch.Tensor) -> tuple[torch.Tensor, ...]:
         outs: dict[int, list[torch.Tensor]] = {}
+        x = self.input_norm(x)
         for k in self.order:
             col = self.columns[str(k)]
             h = col.stem(x)
