@@ -73,6 +73,18 @@ def test_int8_loses_less_than_a_point_and_checks_exact(digits_ws, capsys):
     params = sum(p.numel() for p in net.parameters())
     assert f"int8 weight bytes {params:,} B" in printed
     assert f"file size {out.stat().st_size:,} B" in printed
+    # the causes add up to the whole difference, and each is a real share of the file
+    causes = entry["size"]["causes"]
+    assert sum(causes.values()) == out.stat().st_size - params
+    # QDQ keeps a linear layer's bias as int32: every nn.Linear bias, 3 B more than 1 B
+    assert causes["biases as int32 (3 B more each)"] == 3 * sum(
+        m.bias.numel() for m in net.modules() if isinstance(m, torch.nn.Linear)
+        and m.bias is not None)
+    # only the digits template's batch norms (100 weights + 100 biases a column) are not
+    # int8 weights: folded into the dense layer before them, or kept in float after a sum
+    norms = sum(p.numel() for m in net.modules() if isinstance(m, torch.nn.BatchNorm1d)
+                for p in m.parameters())
+    assert -norms <= causes["parameters not in int8 (norms folded or kept in float)"] < 0
     capsys.readouterr()
     assert main(["check", str(ws), "--artifact", str(out)]) == 0
     assert "checks exact" in capsys.readouterr().out

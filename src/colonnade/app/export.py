@@ -198,16 +198,28 @@ def _ledger_int8_bytes(net: ProgressiveNet, names: list[str]) -> int:
 
 
 def _size_report(data: bytes, ledger: int) -> dict[str, Any]:
+    """The file's bytes against the ledger's (1 B a parameter), the difference by cause.
+
+    The causes add up to the difference exactly: biases stored as int32 (3 B more each),
+    scales and zero points, float tensors left unquantised (with the norms' running
+    statistics, which the ledger does not count), the graph, and, with a minus sign, the
+    parameters that are not int8 weights: norms folded into the layer before them, or
+    kept in float (they are then counted again among the float tensors).
+    """
     parts = size_breakdown(data)
-    biases = parts["int32_tensors"]
-    why = (f"the ledger counts 1 B per parameter; the file also holds {biases:,} B of "
-           f"biases kept as int32 (4 B each, as QDQ requires), {parts['float_tensors']:,} B "
-           f"of float tensors (quantisation scales, one per output channel and activation), "
-           f"{parts['int8_tensors'] + parts['uint8_tensors'] - 0:,} B of int8/uint8 tensors "
-           f"(weights and zero points) and {parts['graph_and_metadata']:,} B of graph, names "
-           f"and metadata")
+    biases = parts["int32_biases"] // 4
+    causes = {"biases as int32 (3 B more each)": 3 * biases,
+              "quantisation scales": parts["scales"],
+              "zero points": parts["zero_points"],
+              "tensors left in float": parts["float_tensors"],
+              "other tensors": parts["other_tensors"],
+              "graph, names and metadata": parts["graph_and_metadata"],
+              "parameters not in int8 (norms folded or kept in float)":
+                  parts["int8_weights"] + biases - ledger}
+    why = ", ".join(f"{name} {value:+,} B" for name, value in causes.items() if value)
     return {"file_bytes": len(data), "ledger_int8_bytes": ledger,
-            "difference": len(data) - ledger, "breakdown": parts, "explained": why}
+            "difference": len(data) - ledger, "breakdown": parts, "causes": causes,
+            "explained": f"the ledger counts 1 B per parameter; the file differs by {why}"}
 
 
 # ----------------------------------------------------------------------------- export
@@ -278,7 +290,7 @@ def export_artifact(folder: str | Path, out: str | Path, task: str | None = None
                      "format": kind, "precision": meta["precision"], "tasks": names,
                      "runtime": runner.runtime, "calibration": meta["calibration"],
                      "accept_drop": float(accept_drop) if int8 else None,
-                     "tasks_report": rows, "colonnade": __version__}
+                     "tasks_report": rows, "size": size, "colonnade": __version__}
             record_export(net, entry, outputs)
         os.replace(staged, out)
         staged = None

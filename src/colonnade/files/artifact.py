@@ -29,7 +29,7 @@ from ..clock import now
 from ..errors import ColonnadeError, SealedError, UsageError
 from ..model.adapters import JointAdapter, LinearAdapter, NonlinearAdapter
 from ..model.digest import closure_digests
-from ..model.network import ProgressiveNet
+from ..model.network import Column, ProgressiveNet
 from .standalone import FORMAT, LAYERS, VERSION, ArtifactModel
 
 __all__ = ["ExportError", "describe_layer", "artifact_architecture", "artifact_state",
@@ -138,6 +138,9 @@ def artifact_architecture(net: ProgressiveNet, tasks: list[str]) -> dict[str, An
     columns, adapters = [], []
     for k in joint_closure(net, tasks)[0]:
         col = net.columns[k]
+        if type(col) is not Column:  # e.g. an adopted model: not plain torch layers
+            raise ExportError(f"column {k} ({type(col).__name__}) cannot be written as an "
+                              f"artifact yet; export tasks whose closure leaves it out")
         columns.append({
             "index": k,
             "stem": [describe_layer(m) for m in col.stem],
