@@ -34,6 +34,8 @@ from colonnade.files.artifact import (
 )
 from colonnade.files.onnx_export import onnx_bytes
 from colonnade.model.digest import closure_digests
+from colonnade.model.network import ProgressiveNet
+from colonnade.model.spec import parse_spec
 
 # Two more templates so that every layer kind and option the spec offers is exported:
 # layer norm over maps (GroupNorm), pools whose stride differs from their size, max pool
@@ -236,3 +238,28 @@ def test_a_sealed_task_that_moved_is_not_exported():
         net.heads["a"].bias[0] += 1.0  # an in-place edit behind the guard's back
     with pytest.raises(SealedError, match="no longer matches its seal v1"):
         artifact_blob(net, ["a"])
+
+
+def test_input_normalisation_and_class_names_ship_in_the_file():
+    """The spec's input normalisation runs inside the artifact (its two buffers ship with
+    it) and the class names travel in the metadata; reference: the grown network."""
+    raw = dict(CONV1D, input={"shape": [2, 24],
+                              "normalize": {"mean": [0.5, -1.0], "std": [2.0, 0.25]}})
+    net = ProgressiveNet(parse_spec(raw))
+    net.add_column("a", 3, seed=1, class_names=["ok", "wear", "crack"])
+    net.add_column("b", 2, seed=2)
+    net.freeze()
+    x = _x(net)
+    blob = artifact_blob(net, net.tasks)
+    assert {"input_norm.mean", "input_norm.std"} <= set(blob["state"])
+    with torch.no_grad():
+        every = net.forward_all(x)
+        for task, got in zip(net.tasks, artifact_model(blob)(x), strict=True):
+            assert torch.equal(got, every[task]), task
+    meta = blob["meta"]
+    assert meta["normalize"] == {"mean": [0.5, -1.0], "std": [2.0, 0.25]}
+    assert [t["class_names"] for t in meta["tasks"]] == [["ok", "wear", "crack"], None]
+    session = ort.InferenceSession(onnx_bytes(artifact_model(blob), [2, 24], meta),
+                                   providers=["CPUExecutionProvider"])
+    for task, got in zip(net.tasks, session.run(None, {"x": x.numpy()}), strict=True):
+        assert np.abs(got - every[task].numpy()).max() <= 1e-5, task
