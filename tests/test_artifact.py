@@ -159,7 +159,7 @@ def test_another_runtime_version_needs_a_tolerance(tmp_path, capsys, monkeypatch
     (["--task", "a", "-o", "{tmp}/a.onnx", "--calibrate", "{tmp}/c.npz"],
      "--calibrate applies to --int8 only"),
     (["--task", "a", "-o", "{tmp}/a.onnx", "--int8", "--calibrate", "{tmp}/wrong.npz"],
-     "calibration rows have shape [5], but the network expects [12]"),
+     "x has sample shape [5], but the spec's input is [12]"),
 ])
 def test_export_bad_input_is_one_sentence(tmp_path, capsys, flags, message):
     ws = _workspace(tmp_path, DENSE, seal=())

@@ -57,7 +57,8 @@ from ..files.store import atomic_write
 from ..model.digest import bytes_digest, tensor_digest
 from ..model.guard import sealed_tasks, seals_of
 from ..model.network import ProgressiveNet
-from ..training.data import load_arrays
+from ..training.data import load_for_spec
+from ..training.datasets import materialize
 from ..training.fit import task_logits
 from ..training.validation import validation
 from .transaction import read_workspace, writing
@@ -107,23 +108,12 @@ def _selection(net: ProgressiveNet, task: str | None, tasks: str | list[str] | N
 
 
 def _calibration_file(path: Path, net: ProgressiveNet) -> np.ndarray:
-    """Rows of ``x`` from a calibration file, shaped as the network's input."""
-    arrays = load_arrays(path)
-    if "x" not in arrays:
-        raise DataError(f"{path}: no array named 'x' with calibration rows")
-    x = np.asarray(arrays["x"])
-    want = tuple(net.input_shape)
-    if x.ndim == 2 and x.shape[1:] != want and x.shape[1] == int(np.prod(want)) \
-            and path.suffix.lower() == ".csv":  # a CSV row is flat by nature
-        x = x.reshape(x.shape[0], *want)
-    if tuple(x.shape[1:]) != want:
-        raise DataError(f"{path}: calibration rows have shape {list(x.shape[1:])}, but the "
-                        f"network expects {list(want)}")
-    if x.shape[0] == 0:
-        raise DataError(f"{path}: holds no calibration rows")
-    if not np.issubdtype(x.dtype, np.number) or not np.isfinite(x).all():
-        raise DataError(f"{path}: calibration rows must be finite numbers")
-    return np.ascontiguousarray(x, dtype=np.float32)
+    """Rows from a calibration file or folder (any data format), shaped as the input.
+
+    Labels are not needed; if the file has them they are ignored (one class is allowed).
+    """
+    data = load_for_spec(path, net.spec, need_labels=False, split=False)
+    return np.ascontiguousarray(materialize(data.x).numpy(), dtype=np.float32)
 
 
 def _calibration(net: ProgressiveNet, names: list[str], path: str | Path | None,
@@ -134,7 +124,7 @@ def _calibration(net: ProgressiveNet, names: list[str], path: str | Path | None,
         source = str(path)
     else:
         kept = [validation(net, t) for t in names]
-        rows = [v[0] for v in kept if v is not None]
+        rows = [materialize(v[0]) for v in kept if v is not None]
         if not rows:
             raise DataError(f"--int8 needs calibration data, and the workspace keeps no "
                             f"validation data for {', '.join(names)}; pass --calibrate FILE")
@@ -272,6 +262,7 @@ def export_artifact(folder: str | Path, out: str | Path, task: str | None = None
                                  f"workspace, so no reference outputs were recorded for it")
                     continue
                 x, y, probe = found
+                x = materialize(x)
                 with computation_context(runner.threads):
                     ws = task_logits(net, t, x, batch_size=runner.batch).numpy()
                 got = runner.run(x)[t]
@@ -373,7 +364,7 @@ def check_artifact(folder: str | Path, artifact: str | Path, tolerance: float | 
         if x is None:
             results.append(TaskCheck(task, None, "unverified", failures=[problem]))
             continue
-        results.append(compare_outputs(task, runner.run(x)[task],
+        results.append(compare_outputs(task, runner.run(materialize(x))[task],
                                        stored.get(str(recorded.get("key"))), recorded,
                                        tolerance))
     return CheckReport(str(folder), results, notes)

@@ -68,9 +68,10 @@ def add_parsers(verb: Any) -> None:
                         "colonnade/files/standalone.py) or FILE.onnx")
     p.add_argument("--int8", action="store_true",
                    help="quantise to int8 (ONNX, onnxruntime static quantisation, QDQ)")
-    p.add_argument("--calibrate", metavar="FILE",
-                   help="with --int8: calibration rows (.npz or .csv with x); default: the "
-                        "validation data kept in the workspace")
+    p.add_argument("--calibrate", metavar="FILE|DIR",
+                   help="with --int8: calibration samples (any data format: .npz, .csv, .npy, a "
+                        "folder; labels not needed); default: the validation data kept in "
+                        "the workspace")
     p.add_argument("--accept-drop", type=non_negative_float, default=1.0, metavar="POINTS",
                    help="with --int8: accuracy points a sealed task may lose (default 1.0)")
     p.add_argument("--json", action="store_true")
