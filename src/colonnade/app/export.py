@@ -21,7 +21,7 @@ import torch
 
 from .._version import __version__
 from ..clock import now
-from ..costing.costs import DTYPE_BYTES, count_params
+from ..costing.costs import DTYPE_BYTES
 from ..errors import ColonnadeError, DataError, UsageError, WorkspaceError
 from ..evidence.artifact import (
     ARTIFACTS_FILE,
@@ -39,7 +39,7 @@ from ..files.artifact import (
     artifact_blob,
     artifact_meta,
     artifact_model,
-    joint_closure,
+    artifact_state,
     torch_bytes,
 )
 from ..files.onnx_export import onnx_bytes, read_metadata, with_metadata
@@ -175,16 +175,11 @@ def _probe_again(folder: Path, net: ProgressiveNet, task: str, recorded: dict[st
 
 
 def _ledger_int8_bytes(net: ProgressiveNet, names: list[str]) -> int:
-    """The cost ledger's int8 weight bytes for the artifact's parts: 1 B per parameter."""
-    columns, adapters = joint_closure(net, names)
-    total = 0
-    for k in columns:
-        total += count_params(net.columns[k], "column").total
-    for key in adapters:
-        total += count_params(net.adapters[key], "adapters").total
-    for t in names:
-        total += count_params(net.heads[t], "head").total
-    return total * DTYPE_BYTES["int8"]
+    """The cost ledger's int8 weight bytes for what the artifact holds: 1 B for each
+    parameter element (buffers, such as norm statistics, are not weights)."""
+    params = {name for name, _ in net.named_parameters()}
+    state = artifact_state(net, names)
+    return sum(t.numel() for k, t in state.items() if k in params) * DTYPE_BYTES["int8"]
 
 
 def _size_report(data: bytes, ledger: int) -> dict[str, Any]:

@@ -29,7 +29,9 @@ from ..clock import now
 from ..errors import ColonnadeError, SealedError, UsageError
 from ..model.adapters import JointAdapter, LinearAdapter, NonlinearAdapter
 from ..model.digest import closure_digests
+from ..model.guard import closure_definition
 from ..model.network import Column, ProgressiveNet
+from ..model.parts import CLOSURE_DEFINITION
 from .standalone import FORMAT, LAYERS, VERSION, ArtifactModel
 
 __all__ = ["ExportError", "describe_layer", "artifact_architecture", "artifact_state",
@@ -121,33 +123,37 @@ def _check_tasks(net: ProgressiveNet, tasks: list[str]) -> list[str]:
     return [t for t in net.tasks if t in seen]  # growth order, whatever order was asked
 
 
-def joint_closure(net: ProgressiveNet, tasks: list[str]) -> tuple[list[int], list[str]]:
-    """Columns and adapters (block and head) that the tasks' outputs depend on, sorted."""
-    columns: set[int] = set()
+def joint_closure(net: ProgressiveNet, tasks: list[str],
+                  ) -> tuple[dict[int, int], list[str]]:
+    """Columns the tasks' outputs depend on, each with how many leading blocks of it they
+    run (block-level closures: a column's unused tail stays out), and the adapters."""
+    depths: dict[int, int] = {}
     adapters: set[str] = set()
     for task in tasks:
         closure = net.closure(task)
-        columns.update(closure.columns)
+        for k in closure.columns:
+            depths[k] = max(depths.get(k, 0), closure.depth(k))
         adapters.update(closure.adapters)
-    return sorted(columns), sorted(adapters)
+    return dict(sorted(depths.items())), sorted(adapters)
 
 
 def artifact_architecture(net: ProgressiveNet, tasks: list[str]) -> dict[str, Any]:
     """The joint closure of ``tasks`` as plain data: columns, live adapters, heads."""
     tasks = _check_tasks(net, tasks)
     columns, adapters = [], []
-    for k in joint_closure(net, tasks)[0]:
+    for k, depth in joint_closure(net, tasks)[0].items():
         col = net.columns[k]
         if type(col) is not Column:  # e.g. an adopted model: not plain torch layers
             raise ExportError(f"column {k} ({type(col).__name__}) cannot be written as an "
                               f"artifact yet; export tasks whose closure leaves it out")
+        blocks = list(col.blocks)[:depth]  # only the blocks the tasks run
         columns.append({
             "index": k,
             "stem": [describe_layer(m) for m in col.stem],
             "blocks": [{"weighted": describe_layer(b.weighted),
-                        "post": [describe_layer(m) for m in b.post]} for b in col.blocks],
+                        "post": [describe_layer(m) for m in b.post]} for b in blocks],
         })
-        for b in range(len(col.blocks)):
+        for b in range(len(blocks)):
             for key, _ in net.adapters_into_block(k, b):
                 adapters.append({"key": key, "sources": list(net.adapter_sources(key)),
                                  "column": k, "block": b, "head": None,
@@ -218,7 +224,16 @@ def artifact_meta(net: ProgressiveNet, tasks: list[str], precision: str = "float
     for task in tasks:
         digest, _ = closure_digests(net.closure_state(task))
         seal = _seal_of(net, task)
-        if seal is not None and seal["closure_sha256"] not in (None, digest):
+        sealed_digest = digest
+        definition = closure_definition(net.meta["seals"][task][-1]) if seal else None
+        if seal is not None and definition != CLOSURE_DEFINITION:
+            # A seal made under another closure definition is compared by its own; the
+            # file still ships only what the task runs.
+            try:
+                sealed_digest, _ = closure_digests(net.closure_state(task, definition))
+            except ColonnadeError:
+                sealed_digest = None
+        if seal is not None and seal["closure_sha256"] not in (None, sealed_digest):
             raise SealedError(f"task {task!r} no longer matches its seal v{seal['version']}; "
                               f"run 'colonnade check' on the workspace before exporting")
         rows.append({"name": task, "output": task, "classes": net.task(task).classes,
