@@ -182,3 +182,16 @@ def test_int8_without_any_calibration_data_is_refused(tmp_path, capsys):
     err = capsys.readouterr().err
     assert "needs calibration data" in err and "--calibrate FILE" in err
     assert not (tmp_path / "q.onnx").exists()
+
+
+def test_a_retired_task_is_not_shipped(tmp_path, capsys):
+    ws = _workspace(tmp_path, DENSE, seal=())
+    assert main(["retire", str(ws), "--task", "b_extra", "--reason", "replaced"]) == 0
+    capsys.readouterr()
+    out = tmp_path / "x.pt"
+    assert main(["export", str(ws), "--tasks", "a,b_extra", "-o", str(out)]) == 2
+    err = capsys.readouterr().err
+    assert "task 'b_extra' is retired" in err and err.count("\n") == 1 and not out.exists()
+    assert main(["export", str(ws), "--all", "-o", str(out)]) == 0  # the live tasks only
+    assert [t["name"] for t in torch.load(out, weights_only=True)["meta"]["tasks"]] == \
+        ["a", "b", "c"]

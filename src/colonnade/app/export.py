@@ -36,6 +36,7 @@ from ..evidence.artifact import (
 from ..evidence.seal import computation_context
 from ..evidence.verify import CheckReport, TaskCheck, probe_for
 from ..files.artifact import (
+    artifact_architecture,
     artifact_blob,
     artifact_meta,
     artifact_model,
@@ -92,10 +93,10 @@ def _selection(net: ProgressiveNet, task: str | None, tasks: str | list[str] | N
     if given != 1:
         raise UsageError("name what to export with exactly one of --task NAME, --tasks A,B "
                          "or --all")
-    if all_tasks:
-        if not net.tasks:
-            raise UsageError("the workspace has no task yet; grow one before exporting")
-        return list(net.tasks)
+    if all_tasks:  # every live task: retired ones are no longer shipped
+        if not net.live_tasks:
+            raise UsageError("the workspace has no live task; grow one before exporting")
+        return list(net.live_tasks)
     if task is not None:
         names = [task]
     elif isinstance(tasks, str):
@@ -243,8 +244,7 @@ def export_artifact(folder: str | Path, out: str | Path, task: str | None = None
             names = _selection(net, task, tasks, all_tasks)
             names = [t for t in net.tasks if t in names] + [t for t in names
                                                             if t not in net.task_info]
-            for t in names:
-                net.task(t)  # an unknown name: one sentence listing the tasks
+            artifact_architecture(net, names)  # unknown or retired: one sentence, now
             calibration = _calibration(net, names, calibrate) if int8 else None
             data, meta, runner = _build(net, names, kind, int8, calibration)
             rows: dict[str, dict[str, Any]] = {}

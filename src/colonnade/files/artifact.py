@@ -116,7 +116,10 @@ def _check_tasks(net: ProgressiveNet, tasks: list[str]) -> list[str]:
         raise UsageError("name at least one task to export")
     seen: list[str] = []
     for task in tasks:
-        net.task(task)  # unknown: one sentence listing the tasks
+        info = net.task(task)  # unknown: one sentence listing the tasks
+        if getattr(info, "state", "live") != "live":
+            raise UsageError(f"task {task!r} is retired, so it is no longer exported; name "
+                             f"live tasks only")
         if task in seen:
             raise UsageError(f"task {task!r} is named twice; name each task once")
         seen.append(task)
