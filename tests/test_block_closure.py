@@ -162,14 +162,14 @@ def test_export_checks_an_old_seal_by_its_own_definition():
     definition is compared by that definition, so it exports, and refuses once a tensor
     only that definition covers has changed."""
     from colonnade.errors import SealedError
-    from colonnade.files.export import standalone_blob
+    from colonnade.files.artifact import artifact_blob
 
     net = _trimmed_net()
     entry = seal_task(net, "t2", _probe(net, "t2"))
     net.meta["seals"]["t2"][-1] = _as_definition_1(net, entry)
-    blob = standalone_blob(net, "t2")
+    blob = artifact_blob(net, ["t2"])
     assert "columns.1.blocks.1.weighted.weight" not in blob["state"]
     with torch.no_grad():
         net.columns[1].blocks[1].weighted.weight.add_(1.0)
     with pytest.raises(SealedError):
-        standalone_blob(net, "t2")
+        artifact_blob(net, ["t2"])
