@@ -169,21 +169,24 @@ def test_export_carries_the_normalisation_and_the_class_names():
     import onnx
     import onnxruntime as ort
 
-    from colonnade.files.export import onnx_bytes, standalone_blob, standalone_model
+    from colonnade.files.artifact import artifact_blob, artifact_model
+    from colonnade.files.onnx_export import onnx_bytes
 
     net = ProgressiveNet(_spec({"mean": [1.0, -2.0, 0.5], "std": [2.0, 0.25, 4.0]}))
     net.add_column("a", 3, seed=0, class_names=["ok", "worn", "cracked"])
     x = torch.from_numpy(_data(n=9)[0])
-    blob = standalone_blob(net, "a")
-    assert blob["class_names"] == ["ok", "worn", "cracked"]
-    assert blob["normalization"] == {"mean": [1.0, -2.0, 0.5], "std": [2.0, 0.25, 4.0]}
+    blob = artifact_blob(net, ["a"])
+    meta = blob["meta"]
+    assert meta["tasks"][0]["class_names"] == ["ok", "worn", "cracked"]
+    assert meta["normalize"] == {"mean": [1.0, -2.0, 0.5], "std": [2.0, 0.25, 4.0]}
     with torch.no_grad():
-        assert torch.equal(standalone_model(blob)(x), net(x, task="a"))
-    data = onnx_bytes(blob)
+        assert torch.equal(artifact_model(blob)(x)[0], net(x, task="a"))
+    data = onnx_bytes(artifact_model(blob), list(net.input_shape), meta)
     got = ort.InferenceSession(data, providers=["CPUExecutionProvider"]).run(
-        ["logits"], {"x": x.numpy()})[0]
+        ["a"], {"x": x.numpy()})[0]
     with torch.no_grad():
         # onnxruntime as the reference runtime; 1e-5 as the export tests use.
         assert np.abs(got - net(x, task="a").numpy()).max() <= 1e-5
     props = {p.key: p.value for p in onnx.load_from_string(data).metadata_props}
-    assert json.loads(props["colonnade.class_names"]) == ["ok", "worn", "cracked"]
+    assert json.loads(props["colonnade.classes"]) == {"a": ["ok", "worn", "cracked"]}
+    assert json.loads(props["colonnade.normalization"]) == meta["normalize"]

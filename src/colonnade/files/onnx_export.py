@@ -89,6 +89,7 @@ def with_metadata(data: bytes, meta: dict[str, Any]) -> bytes:
              "colonnade.classes": json.dumps({t["name"]: t["class_names"] or t["classes"]
                                               for t in meta["tasks"]}),
              "colonnade.input_shape": json.dumps(meta["input_shape"]),
+             "colonnade.normalization": json.dumps(meta.get("normalize")),
              "colonnade.precision": meta["precision"],
              "colonnade.version": meta["colonnade"]}
     for key, value in props.items():
