@@ -9,6 +9,7 @@ sample inputs), onnx's graph protos (the adopted graph's nodes are the file's, u
 from __future__ import annotations
 
 import copy
+import hashlib
 import io
 import json
 import pickle
@@ -26,11 +27,13 @@ from adopt_helpers import small_cnn
 from conftest import flop_macs
 
 import colonnade
+from colonnade.app.adopt import adopt_workspace
 from colonnade.app.export import export_task
 from colonnade.cli import main
 from colonnade.costing import costs, sizing
 from colonnade.errors import ColonnadeError, DataError, SpecError, UsageError
-from colonnade.model.adopted import adopt_onnx
+from colonnade.files.store import load, save
+from colonnade.model.adopted import ADOPTED_FILE, adopt_onnx
 from colonnade.model.exported import load_exported_program
 from colonnade.model.taps import OnnxTaps
 from colonnade.training.data import TaskData
@@ -369,3 +372,22 @@ def test_projection_beside_an_adopted_column_equals_growing_for_real(tmp_path, l
         assert p.network_macs_all == flop_macs(lambda: real.forward_all(x))
         assert p.network.params == sum(q.numel() for q in real.parameters())
         assert p.activation_elements == costs.task_cost(real, p.task).path.activation_elements
+
+
+def test_a_swapped_model_file_is_refused(tmp_path):
+    ws = tmp_path / "ws"
+    adopt_workspace(str(_pt2(tmp_path)), ws, "t", TAPS, _spec(tmp_path), _probe(tmp_path),
+                    seal=True)
+    changed = small_cnn()
+    with torch.no_grad():
+        changed[6].bias.add_(1.0)
+    other = _pt2(tmp_path, changed, "other.pt2")
+    # Through the API: the file's bytes replaced and the manifest record edited to match.
+    net = load(ws)
+    net.attachments[ADOPTED_FILE] = {"model": torch.frombuffer(bytearray(other.read_bytes()),
+                                                               dtype=torch.uint8)}
+    net.adopted.record.sha256 = hashlib.sha256(other.read_bytes()).hexdigest()
+    net.adopted.record.file_bytes = other.stat().st_size
+    save(net, ws)
+    with pytest.raises(DataError, match="not the one whose SHA-256 the weights record"):
+        load(ws)

@@ -86,6 +86,7 @@ class AdoptedColumn(nn.Module):
             digest = bytes.fromhex(record.sha256 or "")
             self.register_buffer("model_sha256",
                                  torch.tensor(list(digest), dtype=torch.uint8))
+            self.register_load_state_dict_post_hook(_same_file)
         shapes = [tuple(s) for s in record.tap_shapes] + [(record.classes,)]
         inp = tuple(record.input)
         blocks = tuple(BlockPlan(None, (), inp, s, s, -1) for s in shapes)
@@ -93,6 +94,13 @@ class AdoptedColumn(nn.Module):
         self.blocks = tuple(range(len(shapes)))  # one output per tap, then the logits
         self.width = 1.0
         self.train(False)
+
+    def file_matches(self) -> bool:
+        """Whether the digest in the state (what seals cover) is that of the file that runs."""
+        if self.data is None:
+            return True
+        stored = bytes(self.model_sha256.detach().cpu().tolist())
+        return stored == hashlib.sha256(self.data).digest()
 
     def attachment(self) -> dict[str, torch.Tensor]:
         """The model file's bytes as the workspace keeps them (``ADOPTED_FILE``)."""
@@ -141,6 +149,14 @@ class AdoptedColumn(nn.Module):
         return (f"adopted {self.record.format} in {self.record.runtime} "
                 f"{self.record.runtime_version}, taps={self.record.taps}, "
                 f"classes={self.record.classes}, frozen")
+
+
+def _same_file(column: AdoptedColumn, _incompatible: Any) -> None:
+    """After loading weights: the sealed digest must be the running file's (else a file
+    swapped in beside an unchanged weights file would run under an old seal)."""
+    if column.model_sha256.device.type != "meta" and not column.file_matches():
+        raise DataError(f"the adopted {column.record.format} file is not the one whose SHA-256 "
+                        f"the weights record; restore the workspace from a backup")
 
 
 # ----------------------------------------------------------------------------- adoption
