@@ -120,6 +120,11 @@ def _check_tasks(net: ProgressiveNet, tasks: list[str]) -> list[str]:
         if getattr(info, "state", "live") != "live":
             raise UsageError(f"task {task!r} is retired, so it is no longer exported; name "
                              f"live tasks only")
+        if getattr(net, "adopted", None) is not None and 0 in net.closure(task).columns:
+            raise UsageError(f"task {task!r} reads the adopted model in column 0, which "
+                             f"export cannot compose with the new parts yet; ship the "
+                             f"adopted model's own file beside the workspace's predictions "
+                             f"instead")
         if task in seen:
             raise UsageError(f"task {task!r} is named twice; name each task once")
         seen.append(task)
