@@ -122,9 +122,9 @@ def _check_tasks(net: ProgressiveNet, tasks: list[str]) -> list[str]:
                              f"live tasks only")
         if getattr(net, "adopted", None) is not None and 0 in net.closure(task).columns:
             raise UsageError(f"task {task!r} reads the adopted model in column 0, which "
-                             f"export cannot compose with the new parts yet; ship the "
-                             f"adopted model's own file beside the workspace's predictions "
-                             f"instead")
+                             f"cannot be written as an artifact with the new parts yet; "
+                             f"ship the adopted model's own file beside the workspace's "
+                             f"predictions instead")
         if task in seen:
             raise UsageError(f"task {task!r} is named twice; name each task once")
         seen.append(task)
