@@ -12,8 +12,11 @@ mkdir -p "$OUT"
 echo "== 1. synthetic vibration spectra for three tasks (also as class folders of .npy files)"
 python examples/pump_data.py --out "$DATA" --folders
 
-echo "== 2. a workspace from the spec"
-colonnade new specs/pump_spectra.yaml -o "$WS"
+echo "== 2. a signing key for the record, and a workspace from the spec"
+# The private key stays here (mode 0600); demo.pub goes to whoever checks the workspace.
+colonnade key new -o "$OUT/demo"
+export COLONNADE_SIGN_KEY="$OUT/demo.key"  # every writing step below signs its history entries
+colonnade new specs/pump_spectra.yaml -o "$WS" --by "demo engineer"
 
 echo "== 3. grow one task at a time and seal it; earlier columns stay frozen"
 # @grow-and-seal: each task is grown, then sealed (seal lines are added by the seal step)
@@ -29,7 +32,8 @@ colonnade grow "$WS" --task pump_a_cavitation --train "$DATA/pump_a_cavitation.n
 # do without, at most 0.5 accuracy points lost on a separate draw of the same pumps.
 python examples/pump_data.py --out "$DATA/check" --seed 1 --train 400 --probe 4 >/dev/null
 colonnade usage "$WS" --task pump_a_cavitation --data "$DATA/check/pump_a_cavitation.npz" --plot "$OUT/usage_pump_a_cavitation.png"
-colonnade trim "$WS" --task pump_a_cavitation --data "$DATA/check/pump_a_cavitation.npz" --quiet
+colonnade trim "$WS" --task pump_a_cavitation --data "$DATA/check/pump_a_cavitation.npz" --quiet \
+  --reason "drop lateral adapters the task barely uses"
 colonnade seal "$WS" --task pump_a_cavitation --probe "$DATA/pump_a_cavitation_probe.npz"
 
 echo "== 4. what the network holds"
@@ -85,11 +89,12 @@ if command -v dot >/dev/null 2>&1; then
 fi
 colonnade check "$INS/workspace"
 
-echo "== last: every seal checked, bit for bit (exits non-zero if any task moved)"
-# Keep these last: every sealed task checks exact, and the last task moved none of them.
-colonnade check "$WS"
-
 echo "== what changed with the last task (exits non-zero if a task sealed before it moved)"
 colonnade diff "$OUT/workspace_before_last_task" "$WS"
+
+echo "== last: the record and every seal checked, bit for bit, against the demo's public key"
+# Keep this the last step: the demo ends with every sealed task checking exact and every
+# history entry signed by a trusted key (exits non-zero otherwise).
+colonnade check "$WS" --trust "$OUT/demo.pub"
 
 echo "== done: everything is under $OUT/"

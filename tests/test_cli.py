@@ -12,6 +12,7 @@ import yaml
 from conftest import permuted_digit_tasks, snapshot, write_npz
 
 from colonnade.cli import main
+from colonnade.evidence import record
 from colonnade.training import fit
 
 
@@ -183,10 +184,15 @@ def test_show_reads_the_manifest_only_and_its_counts_match_numel(files, capsys):
     assert info["parameters"]["total"] == sum(p.numel() for p in net.parameters())
     assert info["columns"][0]["params"] == sum(p.numel() for p in net.columns[0].parameters())
     # A workspace without the summary (as written before it existed) shows the same.
+    # The record binds every section, so the older manifest is committed as such (one more
+    # history entry, chained over the state without the summary).
     manifest = store.read_manifest(files["ws"])
     manifest.pop("summary")
+    record.extend(manifest, record.Attribution(verb="older-save"))
     (files["tmp"] / "ws" / "manifest.yaml").write_text(yaml.safe_dump(manifest,
                                                                        sort_keys=False))
     from colonnade.app.show import describe
 
-    assert describe(files["ws"]) == info
+    again = describe(files["ws"])
+    assert again.pop("history")[:-1] == info.pop("history")
+    assert again == info

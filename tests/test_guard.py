@@ -152,7 +152,9 @@ def test_unseal_is_the_way_round_and_is_recorded(ws, capsys):
 def test_sealing_twice_makes_a_new_version_and_keeps_the_history(ws):
     root = ws.parent
     assert main(["seal", str(ws), "--task", "perm0", "--probe",
-                 str(root / "perm0_probe.npz")]) == 0
+                 str(root / "perm0_probe.npz")]) == 2  # sealing again needs a reason
+    assert main(["seal", str(ws), "--task", "perm0", "--probe",
+                 str(root / "perm0_probe.npz"), "--reason", "annual review"]) == 0
     net = store.load(ws)
     versions = guard.seals_of(net, "perm0")
     assert [v["version"] for v in versions] == [1, 2]

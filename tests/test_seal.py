@@ -117,8 +117,12 @@ def sealed_ws(tmp_path_factory):
         grow_and_seal(net, t, write_probe(root, t), workspace=ws)
     colonnade.grow(net, tasks[2]["name"], task_data(tasks[2]), epochs=1, progress=False)
     store.save(net, ws)
-    # The probe path is recorded relative to the workspace, so the two move together.
-    assert guard.latest_seal(net, "perm0")["probe"]["path"] == "../perm0_probe.npz"
+    # The probe is kept inside the workspace, named by its SHA-256 (hashlib is the
+    # reference); where it was read from is kept for information only.
+    probe = guard.latest_seal(net, "perm0")["probe"]
+    digest = hashlib.sha256((root / "perm0_probe.npz").read_bytes()).hexdigest()
+    assert probe["file"] == f"probe-{digest}.npz" and (ws / probe["file"]).is_file()
+    assert probe["source"] == "../perm0_probe.npz"
     return root
 
 
@@ -187,34 +191,50 @@ def test_a_one_bit_flip_is_caught_and_named(ws, key, hit):
     assert any("weights.safetensors" in n for n in report.notes)
 
 
-def test_a_flip_outside_every_sealed_closure_passes_with_a_note(ws):
+def test_a_flip_outside_every_sealed_closure_keeps_seals_exact_but_fails_the_record(ws):
     flip_bit(ws / store.WEIGHTS, "columns.2.blocks.0.weighted.weight")  # unsealed perm2
     report = check_workspace(ws)
-    assert_all_exact(report)
+    assert {t.verdict for t in report.tasks} == {"exact"}
+    # every byte of the workspace is bound to the record, sealed or not
+    assert not report.passed and "file weights.safetensors" in report.record.first
     assert any("weights.safetensors" in n for n in report.notes)
 
 
+def kept_probe(ws, task: str):
+    return ws / guard.latest_seal(store.load(ws), task)["probe"]["file"]
+
+
 def test_a_changed_probe_file_is_named(ws):
-    probe = ws.parent / "perm0_probe.npz"
+    probe = kept_probe(ws, "perm0")
     with np.load(probe) as z:
         x, y = z["x"].copy(), z["y"]
     x[0, 0] += 1.0
     np.savez(probe, x=x, y=y)
     report = check_workspace(ws)
+    assert not report.passed and f"file {probe.name}" in report.record.first
     by = {t.task: t for t in report.tasks}
     assert by["perm0"].verdict == "unverified"
     assert any(str(probe) in f and "changed" in f for f in by["perm0"].failures)
     assert by["perm1"].verdict == "exact"
 
 
+def test_the_original_probe_file_is_not_needed(ws):
+    (ws.parent / "perm0_probe.npz").unlink()
+    (ws.parent / "perm1_probe.npz").unlink()
+    assert_all_exact(check_workspace(ws))
+
+
 def test_a_missing_probe_file_is_named_and_can_be_given(ws, tmp_path):
-    probe = ws.parent / "perm1_probe.npz"
+    probe = kept_probe(ws, "perm1")
     moved = tmp_path / "elsewhere.npz"
     probe.rename(moved)
-    by = {t.task: t for t in check_workspace(ws).tasks}
+    report = check_workspace(ws)
+    assert not report.passed and f"file {probe.name} is missing" in report.record.first
+    by = {t.task: t for t in report.tasks}
     assert by["perm1"].verdict == "unverified"
-    assert any("missing" in f for f in by["perm1"].failures)
-    assert_all_exact(check_workspace(ws, task="perm1", probe=moved))
+    assert any("is not among the workspace's files" in f for f in by["perm1"].failures)
+    given = check_workspace(ws, task="perm1", probe=moved)
+    assert [t.verdict for t in given.tasks] == ["exact"] and not given.record.passed
 
 
 def test_a_changed_stored_reference_is_named(ws):

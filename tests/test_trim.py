@@ -100,7 +100,7 @@ def trimmed(tmp_path_factory):
     before = colonnade.load(ws)
     train, test = files["perm2"]
     report = app_trim.trim_workspace(ws, "perm2", test, finetune=5, train=train,
-                                        progress=False)
+                                        progress=False, reason="a smaller path")
     return ws, files, before, report
 
 
@@ -262,7 +262,8 @@ def test_trim_merge_is_accepted_within_tolerance_and_reloads(tmp_path):
     ws, files = sealed_workspace(tmp_path, ())
     train, test = files["perm2"]
     before = colonnade.load(ws)
-    report = app_trim.trim_workspace(ws, "perm2", test, merge=True, progress=False)
+    report = app_trim.trim_workspace(ws, "perm2", test, merge=True, progress=False,
+                                        reason="a smaller path")
     merged = [s for s in report["steps"] if s["step"] == "adapters_merged"]
     assert merged, report
     x, y = torch.from_numpy(TASKS[2]["x_test"]), torch.from_numpy(TASKS[2]["y_test"])
@@ -336,7 +337,7 @@ def test_an_interrupted_trim_leaves_workspace_and_network_as_they_were(tmp_path,
     monkeypatch.setattr(trim_module, "evaluate", flaky)
     with pytest.raises(KeyboardInterrupt):
         app_trim.trim_workspace(ws, "perm2", test, finetune=2, train=train, merge=True,
-                                   progress=False)
+                                   progress=False, reason="a smaller path")
     assert snapshot(tmp_path) == before
 
     net = colonnade.load(ws)
@@ -365,7 +366,7 @@ def test_an_interrupted_trim_leaves_workspace_and_network_as_they_were(tmp_path,
 def test_trim_bad_input_is_one_sentence_and_writes_nothing(tmp_path, capsys, args, words):
     ws, files = sealed_workspace(tmp_path, ())
     before = snapshot(tmp_path)
-    argv = ["trim", str(ws), "--data", files["perm2"][1]]
+    argv = ["trim", str(ws), "--data", files["perm2"][1], "--reason", "a smaller path"]
     args = [a.replace("{train}", files["perm2"][0]) for a in args]
     argv += args if "--task" in args else ["--task", "perm2", *args]
     try:

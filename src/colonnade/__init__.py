@@ -64,6 +64,12 @@ _PUBLIC: dict[str, tuple[str, str | None]] = {
     "export_task": ("colonnade.app.export", "export_task"),
     "export_artifact": ("colonnade.app.export", "export_artifact"),
     "check_artifact": ("colonnade.app.export", "check_artifact"),
+    # the record: verify it, read it as typed entries, make a signing key, match data
+    "verify_record": ("colonnade.app.record", "verify_record"),
+    "history": ("colonnade.app.record", "history"),
+    "new_key": ("colonnade.app.record", "new_key"),
+    "match_data_file": ("colonnade.app.record", "match_data_file"),
+    "record": ("colonnade.evidence.record", None),
 }
 
 __all__ = ["__version__", "ColonnadeError", "SpecError", "DataError", "WorkspaceError",

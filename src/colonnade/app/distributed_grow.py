@@ -23,6 +23,7 @@ import torch.distributed as dist
 import torch.multiprocessing as mp
 
 from ..errors import UsageError
+from ..evidence.record import Attribution, unchain
 from ..files.store import load, save
 from ..model.device import resolve_device
 from ..model.schema import Spec
@@ -145,7 +146,7 @@ def _spawned(rank: int, world: int, port: int, request: GrowRequest, staging: st
 
 
 def grow_distributed(request: GrowRequest, nproc: int, progress: bool = True,
-                     ) -> dict[str, Any]:
+                     who: Attribution | None = None) -> dict[str, Any]:
     """Grow one task with ``nproc`` local ranks; commit only when all of them succeeded."""
     if nproc < 2:
         raise UsageError(f"--nproc must be at least 2 for data-parallel training, got {nproc}")
@@ -176,5 +177,8 @@ def grow_distributed(request: GrowRequest, nproc: int, progress: bool = True,
             raise WorkerFailed(f"worker rank {exc.error_index} stopped ({cause}); the "
                                f"workspace is unchanged") from None
         net = load(staging)
-        save(net, request.folder)
-    return net.meta["history"][-1]
+        # The staging copy chained the new entries; chain them again in the workspace.
+        added = net.meta["history"][len(before.meta["history"]):]
+        unchain(added)
+        save(net, request.folder, who)
+    return next(e for e in reversed(added) if e.get("task") == request.task)

@@ -13,6 +13,7 @@ from pathlib import Path
 from typing import Any
 
 from ..errors import WorkspaceError
+from ..evidence.record import verify_chain
 from ..evidence.transfer import record_of
 from ..files.manifest import MANIFEST, read_manifest
 from ..model.seal_index import active_seals
@@ -59,6 +60,11 @@ def _normalization(raw: Any, history: list[dict[str, Any]]) -> dict[str, Any] | 
 def describe(folder: str | Path) -> dict[str, Any]:
     """What ``show`` prints: tasks, columns, heads, adapters and parameter counts."""
     manifest = read_manifest(folder)
+    findings = verify_chain(manifest)
+    if findings:  # never print a forged figure as if it were the record
+        raise WorkspaceError(f"{folder}: the record does not verify: {findings[0].message}; "
+                             f"run 'colonnade check {folder}' and restore the workspace from a "
+                             f"copy you trust")
     try:
         return _describe(folder, manifest, _summary(folder, manifest))
     except (KeyError, TypeError, AttributeError, ValueError):

@@ -5,28 +5,88 @@ through the library layers, commit once at the end. A failure or Ctrl-C before t
 commit leaves the folder exactly as it was, because nothing is written before it.
 Readers open the workspace through ``read_workspace``. Keeping both here means that locking,
 recovery and the record's bookkeeping have exactly one home.
+
+The record's part: every commit extends the history chain with the entries the verb
+added, attributed to ``by`` (default: login user and host), with ``reason``, and signed
+with the key ``sign`` names (or the key file in ``COLONNADE_SIGN_KEY``). The key is read
+when the transaction opens, so a wrong key or passphrase stops the verb before any work.
 """
 
 from __future__ import annotations
 
+import getpass
+import os
+import sys
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
 
+from ..errors import UsageError
+from ..evidence.record import Attribution, describe_entry, signature_required_from
+from ..evidence.signing import Signer, load_signer
 from ..files.store import load, save
 from ..model.network import ProgressiveNet
 
-__all__ = ["Transaction", "read_workspace", "writing"]
+__all__ = ["Transaction", "read_workspace", "writing", "attribution", "signer_from",
+           "SIGN_KEY_ENV", "PASSPHRASE_ENV"]
+
+SIGN_KEY_ENV = "COLONNADE_SIGN_KEY"
+PASSPHRASE_ENV = "COLONNADE_KEY_PASSPHRASE"
+
+
+def _passphrase(path: str | Path) -> bytes | None:
+    """The key's passphrase: from the environment, or asked on a terminal if the key wants one."""
+    if PASSPHRASE_ENV in os.environ:
+        return os.environ[PASSPHRASE_ENV].encode("utf-8")
+    try:
+        head = Path(path).read_bytes()[:64]
+    except OSError:
+        return None  # load_signer says what is wrong with the file
+    if b"ENCRYPTED" in head and sys.stdin.isatty():
+        return getpass.getpass(f"passphrase for {path}: ").encode("utf-8")
+    return None
+
+
+def signer_from(sign: str | Path | None) -> Signer | None:
+    """The signing key named by ``sign``, else by ``COLONNADE_SIGN_KEY``, else none."""
+    path = sign if sign is not None else os.environ.get(SIGN_KEY_ENV) or None
+    if path is None:
+        return None
+    return load_signer(path, _passphrase(path))
+
+
+def attribution(verb: str, by: str | None = None, reason: str | None = None,
+                sign: str | Path | None = None) -> Attribution:
+    """Who commits ``verb`` and why, with the signing key loaded (fails fast if wrong)."""
+    if by is not None and not by.strip():
+        raise UsageError("--by needs a name; leave it out to record the login user and host")
+    return Attribution(verb=verb, by=by, reason=(reason or "").strip() or None,
+                       signer=signer_from(sign))
 
 
 class Transaction:
     """A workspace opened for one writing verb: ``net`` to change, committed once."""
 
-    def __init__(self, folder: str | Path, verb: str) -> None:
+    def __init__(self, folder: str | Path, verb: str, by: str | None = None,
+                 reason: str | None = None, sign: str | Path | None = None) -> None:
         self.folder = Path(folder)
         self.verb = verb
+        self.who = attribution(verb, by, reason, sign)
         self.net: ProgressiveNet = load(folder)
+        self._require_signature()
         self._discarded = False
+
+    @property
+    def reason(self) -> str | None:
+        return self.who.reason
+
+    def _require_signature(self) -> None:
+        history = self.net.meta.get("history")
+        required = signature_required_from(history)
+        if required is not None and self.who.signer is None:
+            raise UsageError(f"{describe_entry(history[required - 1], required)} requires "
+                             f"every later step to be signed; pass --sign KEY or set "
+                             f"{SIGN_KEY_ENV}")
 
     def discard(self) -> None:
         """Leave the workspace as it was: the verb changed nothing worth committing."""
@@ -34,13 +94,14 @@ class Transaction:
 
     def commit(self) -> None:
         if not self._discarded:
-            save(self.net, self.folder)
+            save(self.net, self.folder, self.who)
 
 
 @contextmanager
-def writing(folder: str | Path, verb: str) -> Iterator[Transaction]:
+def writing(folder: str | Path, verb: str, by: str | None = None, reason: str | None = None,
+            sign: str | Path | None = None) -> Iterator[Transaction]:
     """Open ``folder`` for ``verb``; commit when the block ends without an exception."""
-    tx = Transaction(folder, verb)
+    tx = Transaction(folder, verb, by, reason, sign)
     yield tx
     tx.commit()
 

@@ -5,6 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any
 
+from ..clock import now
 from ..errors import UsageError
 from ..files.store import atomic_write
 from ..model.network import ProgressiveNet
@@ -32,10 +33,11 @@ def _check_plot_path(path: str | Path | None) -> None:
 
 def usage_workspace(folder: str | Path, task: str, data: str | Path,
                     plot: str | Path | None = None, noise: float = 1.0, repeats: int = 3,
-                    ) -> dict[str, Any]:
+                    by: str | None = None, reason: str | None = None,
+                    sign: str | Path | None = None) -> dict[str, Any]:
     """``colonnade usage``: score the adapters feeding a task, record them, commit, plot."""
     _check_plot_path(plot)
-    with writing(folder, "usage") as tx:
+    with writing(folder, "usage", by=by, reason=reason, sign=sign) as tx:
         report = _score(tx.net, task, data, noise, repeats)
     if plot is not None:
         atomic_write(plot, usage_heatmap(report, Path(plot).suffix.lower().lstrip(".")))
@@ -54,17 +56,23 @@ def _score(net: ProgressiveNet, task: str, data: str | Path, noise: float, repea
                      seed=net.spec.train.seed)
     report.data = {"source": str(data), "sha256": source_digest(data)}
     record_usage(net, report)
+    net.meta["history"].append({"step": "usage_scored", "task": task, "time": now(),
+                                "data_sha256": report.data["sha256"]})
     return report
 
 
 def trim_workspace(folder: str | Path, task: str, data: str | Path, max_drop: float = 0.5,
                    target_params: int | None = None, target_macs: int | None = None,
                    finetune: int = 0, train: str | Path | None = None, merge: bool = False,
-                   progress: bool = True) -> dict[str, Any]:
-    """``colonnade trim``: trim one task of a workspace and commit once, at the end."""
-    with writing(folder, "trim") as tx:
+                   progress: bool = True, by: str | None = None, reason: str | None = None,
+                   sign: str | Path | None = None) -> dict[str, Any]:
+    """``colonnade trim``: trim one task of a workspace and commit once, at the end.
+
+    Trimming removes parts a task was trained with, so it needs a ``reason`` (recorded).
+    """
+    with writing(folder, "trim", by=by, reason=reason, sign=sign) as tx:
         report = _trim(tx.net, task, data, max_drop, target_params, target_macs, finetune,
-                       train, merge, progress)
+                       train, merge, progress, tx.reason)
         if not report.steps:
             tx.discard()
     return report.to_dict()
@@ -72,10 +80,14 @@ def trim_workspace(folder: str | Path, task: str, data: str | Path, max_drop: fl
 
 def _trim(net: ProgressiveNet, task: str, data: str | Path, max_drop: float,
           target_params: int | None, target_macs: int | None, finetune: int,
-          train: str | Path | None, merge: bool, progress: bool) -> TrimReport:
+          train: str | Path | None, merge: bool, progress: bool, reason: str | None,
+          ) -> TrimReport:
     info = net.task(task)
     refuse_sealed(net, task)
     check_trim_args(max_drop, target_params, target_macs, finetune, train is not None)
+    if reason is None:
+        raise UsageError("trimming changes a task's parts, so it needs a reason; pass "
+                         "--reason TEXT saying why")
     loaded = load_for_spec(data, net.spec, classes=info.classes, class_names=info.class_names,
                            need_labels=True, split=False)
     train_data = None

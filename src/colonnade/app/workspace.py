@@ -11,6 +11,7 @@ from pathlib import Path
 from typing import Any
 
 from ..errors import UsageError
+from ..evidence.provenance import growth_provenance
 from ..files.store import atomic_write, create
 from ..model.network import ProgressiveNet
 from ..training.data import load_for_spec
@@ -25,13 +26,16 @@ from .distributed_grow import (
     run_torchrun_rank,
 )
 from .predictions import OUTPUT_SUFFIXES, prediction_table
-from .transaction import read_workspace, writing
+from .transaction import attribution, read_workspace, writing
 
 __all__ = ["new_workspace", "grow_workspace", "predict_file"]
 
 
-def new_workspace(spec_path: str | Path, folder: str | Path) -> ProgressiveNet:
-    return create(spec_path, folder)
+def new_workspace(spec_path: str | Path, folder: str | Path, by: str | None = None,
+                  reason: str | None = None, sign: str | Path | None = None,
+                  ) -> ProgressiveNet:
+    """``colonnade new``: a workspace from a spec; its record starts with ``created``."""
+    return create(spec_path, folder, who=attribution("new", by, reason, sign))
 
 
 def grow_workspace(folder: str | Path, task: str, train: str | Path, val: str | Path | None = None,
@@ -41,14 +45,17 @@ def grow_workspace(folder: str | Path, task: str, train: str | Path, val: str | 
                    cache_mb: float | None = None, target: float | None = None,
                    nproc: int | None = None, labels: str | Path | None = None,
                    skip_bad: bool = False, class_names: list[str] | None = None,
-                   workers: int = 0) -> dict[str, Any]:
+                   workers: int = 0, by: str | None = None, reason: str | None = None,
+                   sign: str | Path | None = None) -> dict[str, Any]:
     """Grow one task in a workspace from data files; returns the history entry.
 
     ``train`` is an .npz, a .csv, a .npy of samples with ``labels`` (a .npy of labels), or
     a folder of class folders (``skip_bad``: leave unreadable files out, and record how
     many). ``class_names`` names integer classes 0..C-1 (or fixes the order of named
     ones). ``nproc`` >= 2 trains data-parallel on this machine; inside a torchrun launch
-    every rank trains data-parallel and rank 0 writes (distributed.py).
+    every rank trains data-parallel and rank 0 writes (distributed.py). The entry records
+    the data's provenance (digests, rows, shape, dtype, rows per class); ``by``, ``reason``
+    and ``sign`` go to the record (transaction.py).
     """
     options = DataOptions(None if labels is None else str(labels), skip_bad,
                           None if class_names is None else list(class_names))
@@ -57,9 +64,10 @@ def grow_workspace(folder: str | Path, task: str, train: str | Path, val: str | 
                               mode, on, width, classes, epochs, device, cache, cache_mb, target,
                               options)
         if nproc is not None:
-            return grow_distributed(request, nproc, progress=progress)
+            return grow_distributed(request, nproc, progress=progress,
+                                    who=attribution("grow", by, reason, sign))
         return run_torchrun_rank(request, progress=progress)
-    with writing(folder, "grow") as tx:
+    with writing(folder, "grow", by=by, reason=reason, sign=sign) as tx:
         return _grow(tx.net, folder, task, train, val, mode, on, width, classes, epochs,
                      device, progress, cache, cache_mb, target, options, workers)
 
@@ -82,6 +90,10 @@ def _grow(net: ProgressiveNet, folder: str | Path, task: str, train: str | Path,
     entry = grow(net, task, data, mode=mode, on=on, width=width, epochs=epochs, device=device,
                  progress=progress, cache=cache, cache_mb=cache_mb, target=target,
                  classes_given=classes is not None, workers=workers)
+    provenance = growth_provenance(data, train, val, net.spec.train.val_fraction,
+                                   net.spec.train.seed, options.labels)
+    entry["data"] = provenance
+    net.meta["records"][task].setdefault("data", {}).update(provenance)
     # What loading the data did (notes, skipped files), for the caller to print; the
     # history entry itself stays as recorded.
     return {**entry, "data": net.meta["records"][task]["data"]}

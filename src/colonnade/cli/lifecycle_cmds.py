@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 
 from .argtypes import positive_int
+from .record_options import add_record_options
 
 __all__ = ["add_parsers"]
 
@@ -13,7 +14,8 @@ def _retrain(args: argparse.Namespace) -> int:
     from ..app.lifecycle import retrain_workspace
 
     step = retrain_workspace(args.workspace, args.task, args.train, args.reason, val=args.val,
-                             epochs=args.epochs, fresh=args.fresh, progress=not args.quiet)
+                             epochs=args.epochs, fresh=args.fresh, progress=not args.quiet,
+                             by=args.by, sign=args.sign)
     print(f"retrained task {step['task']!r} in place ({len(step['parts'])} parts"
           f"{', from fresh weights' if step['fresh'] else ''}): validation accuracy "
           f"{step['val_accuracy']:.4f}; reason recorded: {step['reason']}")
@@ -23,7 +25,7 @@ def _retrain(args: argparse.Namespace) -> int:
 def _retire(args: argparse.Namespace) -> int:
     from ..app.lifecycle import retire_workspace
 
-    step = retire_workspace(args.workspace, args.task, args.reason)
+    step = retire_workspace(args.workspace, args.task, args.reason, by=args.by, sign=args.sign)
     kept = (f"; parts still read by other tasks: {', '.join(step['parts_still_read'])}"
             if step["parts_still_read"] else "")
     print(f"retired task {step['task']!r}: no longer predicted, exported or costed; its "
@@ -45,6 +47,7 @@ def add_parsers(verb) -> None:  # noqa: ANN001 (parser.build_parser's verb facto
                    help="re-initialise the task's own parts first (default: continue from "
                         "the current weights)")
     p.add_argument("--quiet", action="store_true", help="no progress output")
+    add_record_options(p, with_reason=False)
 
     p = verb("retire", _retire, "take a task out of service (no longer predicted, exported "
                                 "or costed), keeping its record")
@@ -52,3 +55,4 @@ def add_parsers(verb) -> None:  # noqa: ANN001 (parser.build_parser's verb facto
     p.add_argument("--task", required=True)
     p.add_argument("--reason", required=True, help="why the task is retired (kept in the "
                                                    "history)")
+    add_record_options(p, with_reason=False)

@@ -12,6 +12,7 @@ from .argtypes import (
     positive_int,
 )
 from .output import print_json, table
+from .record_options import add_record_options, record_kwargs
 
 __all__ = ["add_parsers"]
 
@@ -20,7 +21,7 @@ def _usage(args: argparse.Namespace) -> int:
     from ..app.trim import usage_workspace
 
     r = usage_workspace(args.workspace, args.task, args.data, plot=args.plot, noise=args.noise,
-                        repeats=args.repeats)
+                        repeats=args.repeats, **record_kwargs(args))
     if args.json:
         print_json(r)
         return 0
@@ -49,7 +50,7 @@ def _trim(args: argparse.Namespace) -> int:
     r = trim_workspace(args.workspace, args.task, args.data, max_drop=args.max_drop,
                        target_params=args.target_params, target_macs=args.target_macs,
                        finetune=args.finetune or 0, train=args.train, merge=args.merge,
-                       progress=not args.quiet)
+                       progress=not args.quiet, **record_kwargs(args))
     if args.json:
         print_json(r)
         return 0
@@ -92,6 +93,7 @@ def add_parsers(verb: Any) -> None:
                    help="perturbation noise, in standard deviations of each input feature")
     p.add_argument("--repeats", type=positive_int, default=3,
                    help="noise draws averaged per adapter")
+    add_record_options(p)
 
     p = verb("trim", _trim, "prune (and merge) low-use adapters of an unsealed task within a "
                             "tolerance")
@@ -114,4 +116,5 @@ def add_parsers(verb: Any) -> None:
                         "adapter")
     p.add_argument("--json", action="store_true")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
+    add_record_options(p, reason="why the task is trimmed (required; kept in the history)")
 

@@ -14,6 +14,7 @@ from .argtypes import (
     positive_int,
 )
 from .output import metric, print_json, table
+from .record_options import add_record_options, record_kwargs
 
 __all__ = ["add_parsers"]
 
@@ -21,7 +22,7 @@ __all__ = ["add_parsers"]
 def _new(args: argparse.Namespace) -> int:
     from ..app.workspace import new_workspace
 
-    net = new_workspace(args.spec, args.output)
+    net = new_workspace(args.spec, args.output, **record_kwargs(args))
     print(f"created workspace {args.output} from spec {net.spec.name!r} "
           f"(input {list(net.input_shape)}, {len(net.spec.column)} template layers, "
           f"lateral {net.spec.lateral.kind})")
@@ -37,7 +38,7 @@ def _grow(args: argparse.Namespace) -> int:
                            cache=False if args.no_cache else None, cache_mb=args.cache_mb,
                            target=args.target, nproc=args.nproc, labels=args.labels,
                            skip_bad=args.skip_bad, class_names=args.class_names,
-                           workers=args.workers)
+                           workers=args.workers, **record_kwargs(args))
     if entry is None:  # a torchrun rank other than 0: rank 0 reports
         return 0
     what = (f"a column (column {entry['column']}, width {entry['width']:g})"
@@ -156,6 +157,7 @@ def add_parsers(verb: Any) -> None:
     p = verb("new", _new, "create a workspace from a spec")
     p.add_argument("spec", help="the YAML spec")
     p.add_argument("-o", "--output", required=True, help="the new workspace folder")
+    add_record_options(p)
 
     p = verb("grow", _grow, "add a column or a head for a new task and train it")
     p.add_argument("workspace")
@@ -197,6 +199,7 @@ def add_parsers(verb: Any) -> None:
                         "spill to a temporary file (default: the spec's train.cache_mb)")
     p.add_argument("--no-cache", action="store_true",
                    help="recompute frozen columns every batch instead of caching them")
+    add_record_options(p)
 
     p = verb("show", _show, "print tasks, columns, heads, adapters and parameter counts")
     p.add_argument("workspace")

@@ -33,7 +33,7 @@ from .._version import __version__
 from ..clock import now
 from ..errors import DataError, UsageError
 from ..model.digest import closure_digests, record_digest, tensor_digest
-from ..model.guard import sealed_tasks, seals_of
+from ..model.guard import closure_architecture, latest_seal, sealed_tasks, seals_of
 from ..model.network import ProgressiveNet
 from ..training.data import load_for_spec
 from ..training.datasets import Rows
@@ -42,23 +42,38 @@ from ..training.sources import source_digest
 
 __all__ = ["SEALS_FILE", "Probe", "load_probe", "probe_metrics", "environment",
            "reference_logits", "computation_context", "seal_task", "unseal_task",
-           "entry_digest", "reference_key"]
+           "entry_digest", "reference_key", "seal_changes", "LOW_ACCURACY_MARGIN"]
 
 SEALS_FILE = "seals.safetensors"
 # Fields not covered by a seal entry's own digest: the digest itself, and the one field
 # that unsealing writes later.
 _UNSIGNED = ("entry_sha256", "unsealed")
+# A policy choice of this project, not a measured or published figure: a probe drawn from
+# a task's own data lands within a few points of its validation accuracy, so a probe this
+# far below it is most likely another task's file. ``accept_low_accuracy`` overrides it.
+LOW_ACCURACY_MARGIN = 0.2
 
 
 @dataclass
 class Probe:
-    """A probe set as read from its file, with the file's SHA-256."""
+    """A probe set as read from its file, with the file's SHA-256 and bytes.
+
+    ``data`` (the file's bytes) is what a seal copies into the workspace, so that the
+    workspace checks on its own wherever it is copied.
+    """
 
     x: torch.Tensor | Rows  # Rows: a probe larger than memory, read in batches
     y: torch.Tensor
     sha256: str
-    path: str  # as recorded in the seal (relative to the workspace where possible)
+    path: str  # where it was read from, kept in the seal for information only
     labels: str | None = None  # a .npy probe's labels file, recorded like ``path``
+    data: bytes | None = None  # a single-file probe's bytes, kept in the workspace
+    suffix: str = ""
+
+    @property
+    def kept_name(self) -> str:
+        """The workspace file a seal keeps it in, named by its content."""
+        return f"probe-{self.sha256}{self.suffix}"
 
 
 def load_probe(path: str | Path, net: ProgressiveNet, task: str,
@@ -70,8 +85,13 @@ def load_probe(path: str | Path, net: ProgressiveNet, task: str,
     info = net.task(task)
     data = load_for_spec(path, net.spec, classes=info.classes, class_names=info.class_names,
                          need_labels=True, split=False, labels=labels)
+    # A probe in one file is kept in the workspace byte for byte (its name is its digest);
+    # a folder or a .npy with a labels file is pinned by its digest and read from its path.
+    single = labels is None and Path(path).is_file()
+    raw = Path(path).read_bytes() if single else None
     return Probe(data.x, data.y, source_digest(path, labels), _recorded(path, relative_to),
-                 None if labels is None else _recorded(labels, relative_to))
+                 None if labels is None else _recorded(labels, relative_to), raw,
+                 Path(path).suffix.lower() if single else "")
 
 
 def _recorded(path: str | Path, relative_to: str | Path | None) -> str:
@@ -144,9 +164,48 @@ def _closure_dtype(state: Mapping[str, torch.Tensor]) -> str:
     return "none"
 
 
+def seal_changes(previous: Mapping[str, Any], entry: Mapping[str, Any]) -> list[str]:
+    """What differs between a task's previous seal and a new one, one phrase each."""
+    def get(e: Mapping[str, Any], section: str, key: str) -> Any:
+        part = e.get(section)
+        return part.get(key) if isinstance(part, Mapping) else None
+
+    out = []
+    before, after = get(previous, "closure", "sha256"), get(entry, "closure", "sha256")
+    out.append("the closure is unchanged" if before == after else
+               f"the closure digest changed ({str(before)[:16]}... to {str(after)[:16]}...)")
+    before, after = get(previous, "probe", "sha256"), get(entry, "probe", "sha256")
+    out.append("the probe is the same file" if before == after else
+               f"the probe is another file ({str(before)[:16]}... to {str(after)[:16]}...)")
+    before, after = get(previous, "metrics", "accuracy"), get(entry, "metrics", "accuracy")
+    out.append(f"probe accuracy {before} to {after}" if before != after
+               else f"probe accuracy unchanged at {after}")
+    return out
+
+
+def _low_accuracy(net: ProgressiveNet, task: str, accuracy: float | None) -> str | None:
+    record = (net.meta.get("records") or {}).get(task)
+    val = record.get("val_accuracy") if isinstance(record, dict) else None
+    if accuracy is None or not isinstance(val, (int, float)):
+        return None
+    if accuracy < val - LOW_ACCURACY_MARGIN:
+        return (f"the probe accuracy {accuracy:.4f} is far below the task's validation "
+                f"accuracy {val:.4f}, so the probe is probably not this task's data; check "
+                f"the file, or pass --accept-low-accuracy to seal on it anyway")
+    return None
+
+
 def seal_task(net: ProgressiveNet, task: str, probe: Probe,
-              batch_size: int = EVAL_BATCH) -> dict[str, Any]:
-    """Seal ``task`` on ``probe``: record the entry, keep the reference logits, log it."""
+              batch_size: int = EVAL_BATCH, reason: str | None = None,
+              accept_low_accuracy: bool = False, require_signed: bool = False,
+              ) -> dict[str, Any]:
+    """Seal ``task`` on ``probe``: record the entry, keep the reference logits, log it.
+
+    Sealing a task that has a seal already needs a ``reason`` and records what differs
+    from the previous seal; a probe accuracy far below the validation accuracy is refused
+    unless ``accept_low_accuracy``. ``require_signed`` asks that every later step of the
+    record be signed. Nothing is changed when it refuses.
+    """
     info = net.task(task)
     if info.state != "live":
         raise UsageError(f"task {task!r} is retired; a retired task is not sealed")
@@ -169,6 +228,12 @@ def seal_task(net: ProgressiveNet, task: str, probe: Probe,
     logits = reference_logits(net, task, probe.x, computation).contiguous()
     version = len(seals_of(net, task)) + 1
     key = reference_key(task, version)
+    probe_entry: dict[str, Any] = {"sha256": probe.sha256, "samples": int(probe.x.shape[0])}
+    if probe.data is not None:  # kept in the workspace; where it came from is information
+        probe_entry = {"file": probe.kept_name, "source": probe.path, **probe_entry}
+    else:  # a folder, or a .npy with labels: read again from its path by ``check``
+        probe_entry = {"path": probe.path, **probe_entry,
+                       **({"labels": probe.labels} if probe.labels is not None else {})}
     entry: dict[str, Any] = {
         "version": version,
         "task": task,
@@ -177,10 +242,8 @@ def seal_task(net: ProgressiveNet, task: str, probe: Probe,
                     "columns": list(closure.columns),
                     "blocks": {str(k): closure.depth(k) for k in closure.columns},
                     "adapters": list(closure.adapters), "head": closure.head,
-                    "tensors": per},
-        "probe": {"path": probe.path, "sha256": probe.sha256,
-                  "samples": int(probe.x.shape[0]),
-                  **({"labels": probe.labels} if probe.labels is not None else {})},
+                    "tensors": per, "architecture": closure_architecture(net, task)},
+        "probe": probe_entry,
         "reference": {"file": SEALS_FILE, "key": key, "sha256": tensor_digest(key, logits),
                       "shape": list(logits.shape),
                       "dtype": str(logits.dtype).removeprefix("torch.")},
@@ -189,11 +252,35 @@ def seal_task(net: ProgressiveNet, task: str, probe: Probe,
         "environment": environment(),
         "unsealed": None,
     }
+    if require_signed:
+        entry["require_signed"] = True
     entry["entry_sha256"] = entry_digest(entry)
+    reason = (reason or "").strip() or None
+    previous = latest_seal(net, task)
+    changes = seal_changes(previous, entry) if previous is not None else None
+    problem = _low_accuracy(net, task, entry["metrics"]["accuracy"])
+    if problem and not accept_low_accuracy:
+        raise UsageError(problem)
+    if changes is not None and reason is None:
+        raise UsageError(f"task {task!r} was sealed before (seal v{previous.get('version')}), "
+                         f"so sealing it again needs --reason TEXT; against that seal "
+                         f"{', '.join(changes)}")
     net.meta.setdefault("seals", {}).setdefault(task, []).append(entry)
     net.attachments.setdefault(SEALS_FILE, {})[key] = logits.cpu()
-    net.meta["history"].append({"step": "task_sealed", "task": task, "version": version,
-                                "time": entry["time"], "closure_sha256": whole})
+    if probe.data is not None:
+        net.kept_files[probe.kept_name] = probe.data
+    step: dict[str, Any] = {"step": "task_sealed", "task": task, "version": version,
+                            "time": entry["time"], "closure_sha256": whole,
+                            "probe_sha256": probe.sha256}
+    if changes is not None:
+        step["changes"] = changes
+    if reason is not None:
+        step["reason"] = reason
+    if require_signed:
+        step["require_signed"] = True
+    if problem:
+        step["low_accuracy_accepted"] = problem.split(", so")[0]
+    net.meta["history"].append(step)
     return entry
 
 

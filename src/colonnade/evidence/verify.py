@@ -67,16 +67,31 @@ class TaskCheck:
 
 @dataclass
 class CheckReport:
+    """Seal verdicts per task, and (from ``check``) the record's verdict and a data match.
+
+    ``record`` is an ``integrity.RecordReport``; ``data`` the answer to ``--data``.
+    """
+
     workspace: str | None
     tasks: list[TaskCheck]
     notes: list[str] = field(default_factory=list)
+    record: Any = None
+    data: dict[str, Any] | None = None
 
     @property
     def passed(self) -> bool:
-        return bool(self.tasks) and all(t.passed for t in self.tasks)
+        if self.record is not None and not self.record.passed:
+            return False
+        if self.data is not None:
+            return bool(self.data.get("matches"))
+        if not self.tasks:
+            return self.record is not None and self.record.entries > 0
+        return all(t.passed for t in self.tasks)
 
     def to_dict(self) -> dict[str, Any]:
         return {"workspace": self.workspace, "passed": self.passed,
+                "record": None if self.record is None else self.record.to_dict(),
+                "data": self.data,
                 "tasks": [t.to_dict() for t in self.tasks], "notes": list(self.notes)}
 
 
@@ -230,12 +245,23 @@ def check_net(net: ProgressiveNet, probes: Mapping[str, Probe], tolerance: float
 
 def probe_for(folder: Path, net: ProgressiveNet, task: str, entry: Mapping[str, Any],
                override: str | Path | None) -> tuple[Probe | None, str | None]:
-    """Read the seal's probe file (or ``override``), or say in one sentence why not."""
+    """Read the seal's probe (or ``override``), or say in one sentence why not.
+
+    A seal keeps its probe inside the workspace (``probe.file``, named by its SHA-256), so
+    a copied workspace checks on its own; the path it was read from is for information.
+    """
     version = entry.get("version")
-    recorded = (entry.get("probe") or {}).get("path") if isinstance(entry.get("probe"),
-                                                                    dict) else None
+    probe_entry = entry.get("probe") if isinstance(entry.get("probe"), dict) else {}
+    recorded = probe_entry.get("path")  # seals made before probes were kept in the workspace
+    kept = probe_entry.get("file")
     if override is not None:
         path = Path(override)
+    elif kept:
+        if kept not in net.kept_files:
+            return None, (f"the probe of seal v{version} ({kept}) is not among the "
+                          f"workspace's files; restore the workspace, or pass --task {task} "
+                          f"--probe FILE")
+        path = folder / str(kept)
     elif recorded:
         path = Path(recorded if os.path.isabs(recorded)
                     else os.path.normpath(folder / recorded))

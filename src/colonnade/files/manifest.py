@@ -17,7 +17,8 @@ import yaml
 
 from ..errors import WorkspaceError
 
-__all__ = ["MANIFEST", "WEIGHTS", "FORMAT", "VERSION", "RESERVED", "read_manifest"]
+__all__ = ["MANIFEST", "WEIGHTS", "FORMAT", "VERSION", "RESERVED", "read_manifest",
+           "manifest_text"]
 
 MANIFEST = "manifest.yaml"
 WEIGHTS = "weights.safetensors"
@@ -25,7 +26,17 @@ FORMAT = "colonnade-workspace"
 VERSION = 1
 # Manifest keys written by the store itself; every other key is the network's record
 # (history, records, seals, ...), loaded back into ``net.meta``.
-RESERVED = ("format", "version", "colonnade", "saved", "spec", "network", "summary", "files")
+RESERVED = ("format", "version", "colonnade", "saved", "spec", "network", "summary", "files",
+            "record")
+
+
+def manifest_text(manifest: dict[str, Any]) -> str:
+    """The one way a manifest is written, so ``check`` can tell a byte that was edited.
+
+    Re-dumping a parsed manifest gives back exactly the bytes the store wrote; anything
+    else was changed outside colonnade, even where it parses to the same values.
+    """
+    return yaml.safe_dump(manifest, sort_keys=False, allow_unicode=True)
 
 
 def read_manifest(folder: str | Path) -> dict[str, Any]:

@@ -17,7 +17,6 @@ from pathlib import Path
 from typing import Any
 
 import torch
-import yaml
 from safetensors import SafetensorError
 from safetensors.torch import load as st_load
 from safetensors.torch import save as st_save
@@ -26,11 +25,12 @@ from .._version import __version__
 from ..clock import now
 from ..errors import ColonnadeError, WorkspaceError
 from ..model.adopted import ADOPTED_FILE, rebuild_adopted
+from ..evidence.record import Attribution, extend, verify_chain
 from ..model.guard import verify_unchanged
 from ..model.network import ProgressiveNet
 from ..model.schema import Spec
 from ..model.spec import load_spec, parse_spec
-from .manifest import FORMAT, MANIFEST, RESERVED, VERSION, WEIGHTS, read_manifest
+from .manifest import FORMAT, MANIFEST, RESERVED, VERSION, WEIGHTS, manifest_text, read_manifest
 from .summary import network_summary
 
 __all__ = ["create", "save", "load", "atomic_write", "read_manifest", "MANIFEST", "WEIGHTS"]
@@ -94,7 +94,7 @@ def _commit(folder: Path, files: dict[str, bytes], manifest: dict[str, Any]) -> 
     try:
         for name, data in files.items():
             temps[name] = _write_temp(folder, name, data)
-        text = yaml.safe_dump(manifest, sort_keys=False, allow_unicode=True)
+        text = manifest_text(manifest)
         manifest_tmp = _write_temp(folder, MANIFEST, text.encode("utf-8"))
         temps[MANIFEST] = manifest_tmp
         for name in files:
@@ -120,11 +120,17 @@ def _tensor_files(net: ProgressiveNet) -> dict[str, bytes]:
     files = {WEIGHTS: st_save(state, metadata={"format": FORMAT})}
     for name, tensors in getattr(net, "attachments", {}).items():
         files[name] = st_save({k: v.detach().cpu().contiguous() for k, v in tensors.items()})
+    files.update(net.kept_files)  # kept verbatim (probes), content-addressed by the caller
     return files
 
 
-def save(net: ProgressiveNet, folder: str | Path) -> None:
-    """Write the whole network and its records to a workspace folder, atomically."""
+def save(net: ProgressiveNet, folder: str | Path, who: Attribution | None = None) -> None:
+    """Write the whole network and its records to a workspace folder, atomically.
+
+    The history entries added since the last commit are chained, attributed to ``who``
+    (default: the login user and host) and signed if ``who.signer`` is set
+    (``evidence.record.extend``): every commit extends the record.
+    """
 
     folder = Path(folder)
     if not folder.is_dir():
@@ -146,13 +152,15 @@ def save(net: ProgressiveNet, folder: str | Path) -> None:
             manifest[key] = value
     manifest["files"] = {name: {"sha256": _sha256(data), "bytes": len(data)}
                          for name, data in files.items()}
+    extend(manifest, who or Attribution())
     _commit(folder, files, manifest)
 
 
 def create(spec_or_path: Any, folder: str | Path, net: ProgressiveNet | None = None,
-           ) -> ProgressiveNet:
+           who: Attribution | None = None) -> ProgressiveNet:
     """Make a new workspace from a spec (a Spec, a path, or plain data), empty or, when
-    ``net`` is given (built on that spec, as by ``adopt``), holding ``net``."""
+    ``net`` is given (built on that spec, as by ``adopt``), holding ``net``; its record
+    starts with ``created``, attributed to ``who``."""
 
     if isinstance(spec_or_path, Spec):
         spec = spec_or_path
@@ -170,7 +178,7 @@ def create(spec_or_path: Any, folder: str | Path, net: ProgressiveNet | None = N
     made = not folder.exists()
     try:
         folder.mkdir(parents=True, exist_ok=True)
-        save(net, folder)
+        save(net, folder, who or Attribution(verb="new"))
     except BaseException:
         if made:
             for p in folder.iterdir():
@@ -206,9 +214,17 @@ def load(folder: str | Path, strict: bool = True, module: Any = None) -> Progres
     that must name what changed) and lists them in ``net.meta['_mismatched']``.
     ``module``: the user's own ``nn.Module`` when column 0 was adopted from Python code
     (its weights are then loaded from the workspace into it).
+    A workspace whose record does not verify is refused when ``strict`` (the first
+    finding in one sentence) and loaded otherwise, for ``check``.
     """
     folder = Path(folder)
     manifest = read_manifest(folder)
+    if strict:
+        findings = verify_chain(manifest)
+        if findings:
+            raise WorkspaceError(f"{folder}: the record does not verify: "
+                                 f"{findings[0].message}; run 'colonnade check {folder}' "
+                                 f"and restore the workspace from a copy you trust")
     try:
         spec = parse_spec(manifest.get("spec"))
     except ColonnadeError as exc:
@@ -220,9 +236,15 @@ def load(folder: str | Path, strict: bool = True, module: Any = None) -> Progres
     mismatched = []
     tensors: dict[str, dict[str, torch.Tensor]] = {}
     for name, entry in files.items():
+        if not strict and not name.endswith(".safetensors") and not (folder / name).is_file():
+            mismatched.append(name)  # a kept file (a probe) gone: check names it, loads the rest
+            continue
         data, ok = _read_file(folder, name, entry, strict)
         if not ok:
             mismatched.append(name)
+        if not name.endswith(".safetensors"):
+            net.kept_files[name] = data
+            continue
         try:
             tensors[name] = st_load(data)
         except (SafetensorError, ValueError, RuntimeError):

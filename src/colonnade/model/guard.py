@@ -6,11 +6,17 @@ network's one choke point for trainable parts, ``load_state_dict``, pruning and 
 and the store's save all call it. Seal entries themselves are made by
 ``colonnade.evidence.seal``; here they are only read from ``net.meta["seals"]``. Tensor
 digests come from ``model.digest`` so that the guard and the seals hash alike.
+
+Tensors mean something only under the architecture that computes with them: the same
+weights under another lateral activation, reduce factor, layer order or width give other
+outputs. So a seal also records its closure's architecture (``closure_architecture``) and
+the guard refuses to save a sealed closure whose architecture or spec moved.
 """
 
 from __future__ import annotations
 
 from collections.abc import Iterable, Mapping
+from dataclasses import asdict
 from typing import Any
 
 import torch
@@ -26,7 +32,8 @@ from .seal_index import active_seals, versions_of
 ProgressiveNet = nn.Module
 
 __all__ = ["seals_of", "latest_seal", "sealed_tasks", "is_sealed", "sealed_parts", "guard",
-           "guard_state", "closure_findings", "verify_unchanged", "closure_definition"]
+           "guard_state", "closure_findings", "verify_unchanged", "closure_definition",
+           "closure_architecture", "first_difference"]
 
 
 def seals_of(net: ProgressiveNet, task: str) -> list[dict[str, Any]]:
@@ -109,6 +116,37 @@ def closure_definition(entry: Mapping[str, Any]) -> Any:
     return closure.get("definition", 1) if isinstance(closure, dict) else 1
 
 
+def closure_architecture(net: ProgressiveNet, task: str) -> dict[str, Any]:
+    """What gives a closure's tensors their meaning: the spec's input, column template and
+    lateral policy, and the closure's columns, adapters and head, as plain data."""
+    closure = net.closure(task)
+    spec = net.spec.to_dict()
+    columns = {c.index: c for c in net.column_info}
+    return {"input": spec["input"], "column": spec["column"], "lateral": spec["lateral"],
+            "columns": [asdict(columns[k]) for k in closure.columns],
+            "adapters": [asdict(net.adapter_info[a]) for a in closure.adapters],
+            "head": asdict(net.task_info[task])}
+
+
+def first_difference(before: Any, after: Any, path: str = "") -> str | None:
+    """``lateral.activation: 'relu' -> 'tanh'``: the first place two plain values differ."""
+    if isinstance(before, Mapping) and isinstance(after, Mapping):
+        for key in list(before) + [k for k in after if k not in before]:
+            found = first_difference(before.get(key), after.get(key),
+                                     f"{path}.{key}" if path else str(key))
+            if found:
+                return found
+        return None
+    if (isinstance(before, list) and isinstance(after, list)
+            and len(before) == len(after)):
+        for i, (a, b) in enumerate(zip(before, after, strict=True)):
+            found = first_difference(a, b, f"{path}[{i}]")
+            if found:
+                return found
+        return None
+    return None if before == after else f"{path or 'value'}: {before!r} -> {after!r}"
+
+
 def closure_findings(net: ProgressiveNet, task: str, entry: Mapping[str, Any],
                      where: str = "") -> tuple[list[str], list[str]]:
     """What differs between a task's closure now and its seal, one sentence each.
@@ -140,6 +178,11 @@ def closure_findings(net: ProgressiveNet, task: str, entry: Mapping[str, Any],
                      f"v{version}")
     evidence = []
     closure = entry.get("closure") if isinstance(entry.get("closure"), dict) else {}
+    if "architecture" in closure:  # seals made before it was recorded have none
+        changed = first_difference(closure["architecture"], closure_architecture(net, task))
+        if changed:
+            moved.append(f"the architecture of its closure changed since seal v{version} "
+                         f"({changed})")
     if not moved and whole != closure.get("sha256"):
         evidence.append(f"the closure digest recorded in seal v{version} of task {task!r} "
                         f"does not match its own per-tensor digests, so the manifest entry "

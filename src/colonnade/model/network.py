@@ -73,6 +73,8 @@ class ProgressiveNet(ArchitectureRecord, AdoptionMixin, nn.Module):
         self.meta: dict[str, Any] = {"history": [], "records": {}}
         # Extra tensor files of the workspace (file name -> tensors), e.g. seal references.
         self.attachments: dict[str, dict[str, torch.Tensor]] = {}
+        # Files the workspace keeps byte for byte (file name -> bytes), e.g. seal probes.
+        self.kept_files: dict[str, bytes] = {}
         self._trainable: set[str] = set()
         self._into: dict[tuple[int, int], list[tuple[str, int]]] = {}
         self._into_head: dict[str, list[tuple[str, int]]] = {}

@@ -206,7 +206,7 @@ def seal_sections(net: ProgressiveNet, check: Mapping[str, Any] | None,
                              f"tensors"],
                  ["probe", f"{probe.get('samples')} samples, "
                            f"{short_digest(probe.get('sha256'))}"],
-                 ["probe file", str(probe.get("path"))],
+                 ["probe file", str(probe.get("file") or probe.get("path"))],
                  ["accuracy on probe", f"{metrics.get('accuracy'):.4f}"
                   if isinstance(metrics.get("accuracy"), float) else "-"],
                  ["computed with", f"batch {comp.get('batch_size')}, {comp.get('threads')} "

@@ -1,0 +1,131 @@
+"""Verbs of the record: verify it, read it, make a signing key, match a data file.
+
+``verify_record`` reads what a workspace holds and hands it to ``evidence.integrity``;
+``history`` returns the chain as typed entries; ``new_key`` writes an Ed25519 key pair;
+``match_data_file`` says whether a file is the data a task was trained on. None of them
+writes into a workspace.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Iterable
+from pathlib import Path
+from typing import Any
+
+from ..errors import DataError, UsageError, WorkspaceError
+from ..evidence.integrity import RecordReport, verify_manifest
+from ..evidence.provenance import match_data, sample_fingerprint
+from ..evidence.record import Finding, RecordEntry, typed_history, verify_chain
+from ..evidence.signing import key_id, load_signer, load_trusted, new_key_pems
+from ..files.manifest import MANIFEST, manifest_text, read_manifest
+from ..model.digest import file_digest
+from ..training.data import load_for_spec
+from ..training.sources import source_digest
+from .transaction import read_workspace
+
+__all__ = ["verify_record", "history", "new_key", "match_data_file"]
+
+
+def _digest_reader(folder: Path):
+    """A listed file's SHA-256, or None when it is missing or not a plain file inside."""
+    def digest_of(name: str) -> str | None:
+        if not name or "/" in name or "\\" in name or name.startswith("."):
+            return None  # the store never writes such names; treat them as missing
+        path = folder / name
+        return file_digest(path) if path.is_file() and not path.is_symlink() else None
+    return digest_of
+
+
+def verify_record(folder: str | Path, trust: Iterable[str | Path] | None = None,
+                  ) -> RecordReport:
+    """Check a workspace's record: every byte of the manifest, every entry of the chain,
+    the state bound to its head, every file, and the signatures (against ``trust``).
+
+    Without ``trust`` signatures are checked against the keys they carry, which proves
+    nothing about who signed; with it, the chain head must be signed by a trusted key.
+    """
+    trusted = [load_trusted(p) for p in trust or []]
+    folder = Path(folder)
+    if not folder.is_dir():
+        raise WorkspaceError(f"{folder}: no such workspace folder")
+    path = folder / MANIFEST
+    if not path.is_file():
+        raise WorkspaceError(f"{folder}: not a workspace (no {MANIFEST})")
+    try:
+        manifest = read_manifest(folder)
+    except WorkspaceError as exc:
+        return RecordReport(str(folder), 0, None, [Finding(str(exc), file=MANIFEST)],
+                            trusted=[k.key_id for k in trusted])
+    return verify_manifest(manifest, path.read_bytes(), manifest_text(manifest),
+                           _digest_reader(folder), trusted, str(folder), MANIFEST)
+
+
+def history(folder: str | Path, verify: bool = True) -> list[RecordEntry]:
+    """The workspace's history as typed entries, oldest first.
+
+    With ``verify`` (the default) a chain or state that does not verify is refused with
+    its first finding, so nothing forged is handed on as history.
+    """
+    manifest = read_manifest(folder)
+    if verify:
+        findings = verify_chain(manifest)
+        if findings:
+            raise WorkspaceError(f"{folder}: the record does not verify: "
+                                 f"{findings[0].message}; run 'colonnade check {folder}'")
+    return typed_history(manifest.get("history"))
+
+
+def new_key(name: str | Path, passphrase: str | None = None) -> dict[str, Any]:
+    """``colonnade key new -o NAME``: write NAME.key (mode 0600) and NAME.pub.
+
+    Refuses to overwrite either file: losing a private key that signed records cannot be
+    undone by writing a new one.
+    """
+    base = Path(name)
+    if base.suffix in (".key", ".pub"):
+        base = base.with_suffix("")
+    private_path, public_path = Path(f"{base}.key"), Path(f"{base}.pub")
+    if not private_path.parent.is_dir():
+        raise UsageError(f"{private_path.parent}: no such folder for the key files")
+    for p in (private_path, public_path):
+        if p.exists():
+            raise UsageError(f"{p}: exists already; choose another name (a key that signed "
+                             f"records must not be replaced)")
+    private_pem, public_pem = new_key_pems(passphrase.encode("utf-8") if passphrase else None)
+    fd = os.open(private_path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+    try:
+        with os.fdopen(fd, "wb") as f:
+            f.write(private_pem)
+        with open(public_path, "xb") as f:
+            f.write(public_pem)
+    except BaseException:
+        private_path.unlink(missing_ok=True)
+        raise
+    signer = load_signer(private_path, passphrase.encode("utf-8") if passphrase else None)
+    return {"key": str(private_path), "public": str(public_path),
+            "key_id": key_id(signer.private.public_key()), "encrypted": bool(passphrase)}
+
+
+def match_data_file(folder: str | Path, task: str, data: str | Path) -> dict[str, Any]:
+    """``check --data FILE --task NAME``: is this the file the task was trained on?"""
+    net = read_workspace(folder)
+    info = net.task(task)
+    record = (net.meta.get("records") or {}).get(task) or {}
+    recorded = record.get("data") if isinstance(record, dict) else None
+    if not isinstance(recorded, dict) or "train" not in recorded:
+        raise WorkspaceError(f"task {task!r} was grown before data provenance was recorded, "
+                             f"so there is nothing to compare the file with")
+    path = Path(data)
+    if not path.exists():
+        raise DataError(f"{path}: no such data file or folder")
+    sha = source_digest(path)
+    try:
+        loaded = load_for_spec(path, net.spec, classes=info.classes,
+                               class_names=info.class_names, split=False)
+        samples = sample_fingerprint(loaded.x, loaded.y, info.classes)
+    except DataError:
+        samples = None  # not even readable as this task's data: the digest says enough
+    role, sentence = match_data(recorded, sha, samples)
+    return {"task": task, "file": str(path), "sha256": sha, "matches": role is not None,
+            "role": role, "sentence": sentence}
