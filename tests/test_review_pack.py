@@ -71,7 +71,8 @@ def history(tmp_path_factory, data):
     shutil.copytree(ws, root / "two_sealed")
     grow_workspace(ws, "perm2", data / "perm2.npz", progress=False)
     shutil.copytree(ws, root / "three")
-    trim_workspace(ws, "perm2", data / "perm2_probe.npz", max_drop=100.0, progress=False)
+    trim_workspace(ws, "perm2", data / "perm2_probe.npz", max_drop=100.0, progress=False,
+                   reason="a smaller path")
     shutil.copytree(ws, root / "trimmed")
     return root
 
@@ -220,11 +221,14 @@ def test_diff_names_a_seal_superseded_with_its_reason(history, tmp_path, data):
     ws = tmp_path / "resealed"
     shutil.copytree(history / "three", ws)
     unseal_workspace(ws, "perm1", "probe set replaced by the customer's")
-    seal_workspace(ws, "perm1", data / "perm1_probe.npz")
+    # sealing a task that was sealed before needs a reason (the record issue)
+    seal_workspace(ws, "perm1", data / "perm1_probe.npz",
+                   reason="probe set replaced by the customer's")
     result = diff_workspaces(history / "three", ws)
     assert result["seals"]["superseded"] == [{"task": "perm1", "version": 1, "by": 2,
                                               "reason": "probe set replaced by the customer's"}]
-    assert {"task": "perm1", "version": 2, "reason": None} in result["seals"]["added"]
+    assert {"task": "perm1", "version": 2,
+            "reason": "probe set replaced by the customer's"} in result["seals"]["added"]
     # Re-sealed over the same closure: still sealed and exact.
     assert result["sealed_in_a"]["tasks"]["perm1"]["kept"]
 

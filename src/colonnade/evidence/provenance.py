@@ -37,15 +37,17 @@ def file_fingerprint(path: str | Path, labels: str | Path | None = None) -> dict
     return out
 
 
-_CHUNK_ROWS = 4096  # rows hashed at a time, so data read on demand is never held whole
+_CHUNK_BYTES = 8 << 20  # hashed at a time, so data read on demand is never held whole
 
 
 def _samples_digest(x: Any, y: torch.Tensor) -> str:
     """SHA-256 over the samples as float32 rows (read in chunks) and the labels."""
     h = hashlib.sha256()
     n = int(x.shape[0])
-    for start in range(0, n, _CHUNK_ROWS):
-        rows = x[np.arange(start, min(n, start + _CHUNK_ROWS))]
+    row_bytes = 4 * int(np.prod([int(d) for d in x.shape[1:]], dtype=np.int64))
+    step = max(1, _CHUNK_BYTES // max(1, row_bytes))
+    for start in range(0, n, step):
+        rows = x[np.arange(start, min(n, start + step))]
         h.update(raw_bytes(torch.as_tensor(rows)))
     h.update(tensor_record("y", y.reshape(-1).to(torch.int64).cpu()))
     return h.hexdigest()

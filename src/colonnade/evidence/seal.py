@@ -252,10 +252,12 @@ def seal_task(net: ProgressiveNet, task: str, probe: Probe,
         "environment": environment(),
         "unsealed": None,
     }
+    reason = (reason or "").strip() or None
+    if reason is not None:
+        entry["reason"] = reason
     if require_signed:
         entry["require_signed"] = True
     entry["entry_sha256"] = entry_digest(entry)
-    reason = (reason or "").strip() or None
     previous = latest_seal(net, task)
     changes = seal_changes(previous, entry) if previous is not None else None
     problem = _low_accuracy(net, task, entry["metrics"]["accuracy"])
