@@ -12,8 +12,8 @@ from .cost_cmds import add_parsers as add_cost_verbs
 from .diff_cmds import add_parsers as add_diff_verbs
 from .evidence_cmds import add_parsers as add_evidence_verbs
 from .export_cmds import add_parsers as add_export_verbs
-from .lifecycle_cmds import add_parsers as add_lifecycle_verbs
 from .key_cmds import add_parsers as add_key_verbs
+from .lifecycle_cmds import add_parsers as add_lifecycle_verbs
 from .trim_cmds import add_parsers as add_trim_verbs
 from .workspace_cmds import add_parsers as add_workspace_verbs
 
