@@ -24,8 +24,8 @@ from safetensors.torch import save as st_save
 from .._version import __version__
 from ..clock import now
 from ..errors import ColonnadeError, WorkspaceError
-from ..model.adopted import ADOPTED_FILE, rebuild_adopted
 from ..evidence.record import Attribution, extend, verify_chain
+from ..model.adopted import ADOPTED_FILE, rebuild_adopted
 from ..model.guard import verify_unchanged
 from ..model.network import ProgressiveNet
 from ..model.schema import Spec
@@ -235,6 +235,7 @@ def load(folder: str | Path, strict: bool = True, module: Any = None) -> Progres
                              f"backup")
     mismatched = []
     tensors: dict[str, dict[str, torch.Tensor]] = {}
+    kept: dict[str, bytes] = {}
     for name, entry in files.items():
         if not strict and not name.endswith(".safetensors") and not (folder / name).is_file():
             mismatched.append(name)  # a kept file (a probe) gone: check names it, loads the rest
@@ -243,7 +244,7 @@ def load(folder: str | Path, strict: bool = True, module: Any = None) -> Progres
         if not ok:
             mismatched.append(name)
         if not name.endswith(".safetensors"):
-            net.kept_files[name] = data
+            kept[name] = data
             continue
         try:
             tensors[name] = st_load(data)
@@ -264,6 +265,7 @@ def load(folder: str | Path, strict: bool = True, module: Any = None) -> Progres
         raise WorkspaceError(f"{folder / WEIGHTS}: does not fit the manifest's network "
                              f"({first})") from None
     net.attachments = tensors
+    net.kept_files = kept
     for key, value in manifest.items():
         if key not in RESERVED:
             net.meta[key] = value
