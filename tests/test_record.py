@@ -465,3 +465,16 @@ def test_battery_of_bit_flips_in_every_file_is_caught_and_named(signed, tmp_path
     print(f"bit-flip battery: {caught} of {total} one-bit flips caught and named over "
           f"{len(names)} files")
     assert caught == total
+
+
+def test_key_new_from_the_command_line(tmp_path, capsys):
+    assert main(["key", "new", "-o", str(tmp_path / "bob")]) == 0
+    out = capsys.readouterr().out
+    assert "bob.key" in out and "bob.pub" in out
+    # cryptography reads both files back as an Ed25519 pair (the reference)
+    private = serialization.load_pem_private_key((tmp_path / "bob.key").read_bytes(), None)
+    public = serialization.load_pem_public_key((tmp_path / "bob.pub").read_bytes())
+    public.verify(private.sign(b"x"), b"x")
+    assert main(["key", "new", "-o", str(tmp_path / "bob")]) == 2  # never overwritten
+    err = capsys.readouterr().err
+    assert "exists already" in err and err.count("\n") == 1
