@@ -88,7 +88,7 @@ def test_a_signed_workspace_verifies_with_trust_and_cryptography_agrees(signed, 
     public = serialization.load_pem_public_key(open(signed["alice"]["public"], "rb").read())
     for entry in _manifest(signed["ws"])["history"]:
         sig = base64.b64decode(entry["signature"]["value"])
-        public.verify(sig, b"colonnade record signature\n" + entry["sha256"].encode())
+        public.verify(sig, b"colonnade record signature\n" + entry["entry_sha256"].encode())
         with pytest.raises(InvalidSignature):
             public.verify(sig, b"colonnade record signature\n" + b"0" * 64)
     assert main(["check", str(signed["ws"]), "--trust", signed["alice"]["public"]]) == 0
@@ -205,7 +205,7 @@ def _forge(ws, keep_signatures: bool) -> None:
     manifest["records"]["perm1"]["val_accuracy"] = 0.9999
     history = manifest["history"]
     for entry in history[3:]:  # from entry 4 (column_added perm1) on
-        for key in ("sha256", "signature", "prev", "state_sha256", "seq"):
+        for key in ("entry_sha256", "signature", "prev_sha256", "state_sha256", "seq"):
             if key != "signature" or not keep_signatures:
                 entry.pop(key, None)
     keep = [e.pop("signature", None) for e in history[3:]] if keep_signatures else []
@@ -215,7 +215,7 @@ def _forge(ws, keep_signatures: bool) -> None:
     for entry, sig in zip(history[3:], keep, strict=False):
         entry["signature"] = sig
     manifest["record"]["length"] = len(manifest["history"])
-    manifest["record"]["head"] = manifest["history"][-1]["sha256"]
+    manifest["record"]["head"] = manifest["history"][-1]["entry_sha256"]
     _write(ws, manifest)
 
 

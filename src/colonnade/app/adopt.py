@@ -26,6 +26,7 @@ from ..model.digest import bytes_digest, raw_bytes
 from ..model.network import ProgressiveNet
 from ..model.schema import Spec
 from ..model.spec import load_spec, parse_spec
+from .transaction import attribution
 
 __all__ = ["adopt", "adopt_workspace", "MODEL_FORMATS"]
 
@@ -117,8 +118,14 @@ def adopt(model: Any, input_shape: Sequence[int] | None = None, task: str = "ado
 
 def adopt_workspace(model: Any, folder: str | Path, task: str, taps: Sequence[str],
                     spec: Any, probe: Any, seal: bool = False,
-                    input_shape: Sequence[int] | None = None) -> dict[str, Any]:
-    """``colonnade adopt``: prove, optionally seal, then create the workspace ``folder``."""
+                    input_shape: Sequence[int] | None = None, by: str | None = None,
+                    reason: str | None = None, sign: str | Path | None = None,
+                    ) -> dict[str, Any]:
+    """``colonnade adopt``: prove, optionally seal, then create the workspace ``folder``.
+
+    ``by``, ``reason`` and ``sign`` go to the record's first entries (transaction.py).
+    """
+    who = attribution("adopt", by, reason, sign)  # a wrong key stops here, before any work
     folder = Path(folder)
     if folder.exists() and (not folder.is_dir() or any(folder.iterdir())):
         raise WorkspaceError(f"{folder}: exists and is not an empty folder; choose a new "
@@ -130,7 +137,7 @@ def adopt_workspace(model: Any, folder: str | Path, task: str, taps: Sequence[st
     loaded = net.meta.pop("_probe")
     entry = net.meta["history"][-1]
     sealed = seal_task(net, task, loaded) if seal else None
-    create(net.spec, folder, net)
+    create(net.spec, folder, net, who=who)
     return {"task": task, "workspace": str(folder), "adopted": net.adopted.record.to_dict(),
             "proof": entry["proof"], "probe": entry["probe"],
             "seal": None if sealed is None else sealed["version"]}

@@ -5,6 +5,8 @@ from __future__ import annotations
 import argparse
 from typing import Any
 
+from .record_options import add_record_options, record_kwargs
+
 __all__ = ["add_parsers"]
 
 
@@ -19,7 +21,7 @@ def _adopt(args: argparse.Namespace) -> int:
     from ..app.adopt import adopt_workspace
 
     result = adopt_workspace(args.model, args.output, args.task, args.taps, args.spec,
-                             args.probe, seal=args.seal)
+                             args.probe, seal=args.seal, **record_kwargs(args))
     record, proof = result["adopted"], result["proof"]
     print(f"adopted {args.model} ({record['format']}, run by {record['runtime']} "
           f"{record['runtime_version']}) as column 0 of {result['workspace']}, task "
@@ -51,3 +53,4 @@ def add_parsers(verb: Any) -> None:
     p.add_argument("--probe", required=True, help="labelled probe data (.npz or .csv) on which "
                                                   "the adoption is proven bit-identical")
     p.add_argument("--seal", action="store_true", help="also seal the adopted task on the probe")
+    add_record_options(p)

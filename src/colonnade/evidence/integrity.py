@@ -83,7 +83,7 @@ def verify_manifest(manifest: Mapping[str, Any], text: bytes, canonical_text: st
                     manifest_name: str = "manifest.yaml") -> RecordReport:
     """Check everything the record binds; see the module docstring for the order."""
     history = manifest.get("history") if isinstance(manifest.get("history"), list) else []
-    head = history[-1].get("sha256") if history and isinstance(history[-1], Mapping) else None
+    head = history[-1].get("entry_sha256") if history and isinstance(history[-1], Mapping) else None
     report = RecordReport(workspace, len(history), head,
                           trusted=[k.key_id for k in trusted or []])
     report.findings += text_findings(text, canonical_text, manifest_name)

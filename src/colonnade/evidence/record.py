@@ -1,8 +1,8 @@
 """The record: a workspace's history as an append-only chain of digests.
 
-Every history entry carries the digest of the entry before it (``prev``) and the digest of
-its own canonical content (``sha256``), so editing, deleting, inserting or reordering an
-entry breaks a link that ``check`` names. Each entry also carries ``state_sha256``, the
+Every history entry carries the digest of the entry before it (``prev_sha256``) and the
+digest of its own canonical content (``entry_sha256``), so editing, deleting, inserting
+or reordering an entry breaks a link that ``check`` names. Each entry also carries ``state_sha256``, the
 digest of the whole workspace state (every manifest section except the history itself:
 spec, network, records, seals, file digests, ...) as it was committed with that entry. The
 manifest's ``record`` section repeats the chain head's digest, the chain length and the
@@ -42,7 +42,7 @@ RECORD_FORMAT = "colonnade-record-1"
 # Manifest sections that the state digest leaves out: the chain and the chain's own summary.
 UNBOUND = ("history", "record")
 # Fields an entry's own digest leaves out: the digest itself and the signature over it.
-_UNDIGESTED = ("sha256", "signature")
+_UNDIGESTED = ("entry_sha256", "signature")
 _ENTRY_DOMAIN = b"colonnade record entry\n"
 _STATE_DOMAIN = b"colonnade record state\n"
 
@@ -170,7 +170,7 @@ def describe_entry(entry: Any, seq: int) -> str:
     return f"history entry {seq} ({' '.join(words)})"
 
 
-_KNOWN = ("seq", "step", "time", "by", "reason", "verb", "task", "prev", "sha256",
+_KNOWN = ("seq", "step", "time", "by", "reason", "verb", "task", "prev_sha256", "entry_sha256",
           "state_sha256", "signature")
 
 
@@ -187,7 +187,7 @@ def typed_history(history: Any) -> list[RecordEntry]:
             by=_opt(entry.get("by")), reason=_opt(entry.get("reason")),
             verb=_opt(entry.get("verb")), task=_opt(entry.get("task")),
             details={k: v for k, v in entry.items() if k not in _KNOWN},
-            prev=_opt(entry.get("prev")), sha256=_opt(entry.get("sha256")),
+            prev=_opt(entry.get("prev_sha256")), sha256=_opt(entry.get("entry_sha256")),
             state_sha256=_opt(entry.get("state_sha256")),
             signature=dict(signature) if isinstance(signature, Mapping) else None))
     return out
@@ -202,7 +202,7 @@ def _chained_prefix(history: list[Any]) -> int:
     """How many entries at the start are already chained (carry a digest)."""
     count = 0
     for entry in history:
-        if not (isinstance(entry, Mapping) and "sha256" in entry):
+        if not (isinstance(entry, Mapping) and "entry_sha256" in entry):
             break
         count += 1
     return count
@@ -222,7 +222,7 @@ def extend(manifest: dict[str, Any], who: Attribution) -> list[dict[str, Any]]:
                              "reload the workspace")
     done = _chained_prefix(history)
     broken = _chain_findings(history[:done])
-    if any(isinstance(e, Mapping) and "sha256" in e for e in history[done:]):
+    if any(isinstance(e, Mapping) and "entry_sha256" in e for e in history[done:]):
         broken.append(Finding("an entry without a digest sits between chained entries"))
     if broken:
         raise WorkspaceError(f"refusing to save: the record does not verify "
@@ -235,7 +235,7 @@ def extend(manifest: dict[str, Any], who: Attribution) -> list[dict[str, Any]]:
     manifest.pop("record", None)
     state = state_digests(manifest)
     state_sha = _state_digest(state)
-    prev = history[done - 1]["sha256"] if done else None
+    prev = history[done - 1]["entry_sha256"] if done else None
     author = who.author
     for offset, entry in enumerate(pending):
         if not isinstance(entry, dict):
@@ -247,12 +247,12 @@ def extend(manifest: dict[str, Any], who: Attribution) -> list[dict[str, Any]]:
         if who.reason and not entry.get("reason"):
             entry["reason"] = who.reason
         entry.setdefault("reason", None)
-        entry["prev"] = prev
+        entry["prev_sha256"] = prev
         entry["state_sha256"] = state_sha
-        entry["sha256"] = entry_digest(entry)
+        entry["entry_sha256"] = entry_digest(entry)
         if who.signer is not None:
-            entry["signature"] = who.signer.sign(entry["sha256"])
-        prev = entry["sha256"]
+            entry["signature"] = who.signer.sign(entry["entry_sha256"])
+        prev = entry["entry_sha256"]
     manifest["record"] = {"format": RECORD_FORMAT, "length": len(history), "head": prev,
                           "state": state}
     return pending
@@ -262,7 +262,8 @@ def unchain(entries: list[dict[str, Any]]) -> None:
     """Take the chain fields off entries, so the next commit chains them anew (used when
     a result made in a staging copy is committed into the workspace)."""
     for entry in entries:
-        for key in ("seq", "prev", "verb", "by", "state_sha256", "sha256", "signature"):
+        for key in ("seq", "prev_sha256", "verb", "by", "state_sha256", "entry_sha256",
+                    "signature"):
             entry.pop(key, None)
 
 
@@ -283,18 +284,18 @@ def _chain_findings(history: list[Any]) -> list[Finding]:
         name = describe_entry(entry, index)
         if not isinstance(entry, Mapping):
             out.append(Finding(f"{name} is not a mapping", index))
-        elif not isinstance(entry.get("sha256"), str):
+        elif not isinstance(entry.get("entry_sha256"), str):
             out.append(Finding(f"{name} carries no digest, so it is not part of the chain "
                                f"(added by hand, or written before the record was chained)",
                                index))
-        elif entry_digest(entry) != entry["sha256"]:
+        elif entry_digest(entry) != entry["entry_sha256"]:
             out.append(Finding(f"{name}: its content does not match its digest", index))
-        elif entry.get("seq") != index or entry.get("prev") != prev:
+        elif entry.get("seq") != index or entry.get("prev_sha256") != prev:
             out.append(Finding(f"{name}: it does not follow the entry before it (its link "
                                f"to the previous digest or its position does not match), so "
                                f"an entry was removed, inserted or moved", index))
         if isinstance(entry, Mapping):
-            prev = entry.get("sha256")
+            prev = entry.get("entry_sha256")
     return out
 
 
@@ -314,7 +315,7 @@ def verify_chain(manifest: Mapping[str, Any]) -> list[Finding]:
         return out
     head = history[-1] if isinstance(history[-1], Mapping) else {}
     n = len(history)
-    if record.get("length") != n or record.get("head") != head.get("sha256"):
+    if record.get("length") != n or record.get("head") != head.get("entry_sha256"):
         out.append(Finding(f"the history ends at entry {n} but the record's head names "
                            f"entry {record.get('length')}: entries were removed from or "
                            f"added at the end", n, section="record"))

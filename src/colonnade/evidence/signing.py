@@ -195,7 +195,7 @@ def signature_report(history: list[Any], trusted: list[TrustedKey] | None,
         if block is None:
             statuses.append(EntrySignature(seq, "unsigned", None))
             continue
-        ok, kid = check_signature(block, str(entry.get("sha256")))
+        ok, kid = check_signature(block, str(entry.get("entry_sha256")))
         if not ok:
             statuses.append(EntrySignature(seq, "invalid", kid))
             findings.append(Finding(f"{describe_entry(entry, seq)}: its signature (key "
