@@ -1,13 +1,14 @@
 """The record: a workspace's history as an append-only chain of digests.
 
 Every history entry carries the digest of the entry before it (``prev_sha256``) and the
-digest of its own canonical content (``entry_sha256``), so editing, deleting, inserting
-or reordering an entry breaks a link that ``check`` names. Each entry also carries ``state_sha256``, the
-digest of the whole workspace state (every manifest section except the history itself:
-spec, network, records, seals, file digests, ...) as it was committed with that entry. The
-manifest's ``record`` section repeats the chain head's digest, the chain length and the
-state as one digest per section, so a change anywhere in the manifest is named by section
-(``seals/pump_b_faults``) and the files are bound through the digests in ``files``.
+digest of its own canonical content (``entry_sha256``), so editing, deleting, inserting or
+reordering an entry breaks a link that ``check`` names. Each entry also carries
+``state_sha256``, the digest of the whole workspace state (every manifest section except
+the history itself: spec, network, records, seals, file digests, ...) as it was committed
+with that entry. The manifest's ``record`` section repeats the chain head's digest, the
+chain length and the state as one digest per section, so a change anywhere in the manifest
+is named by section (``seals/pump_b_faults``) and the files are bound through the digests
+in ``files``.
 
 Digests are SHA-256 over canonical JSON (sorted keys, no spaces, ASCII) of the parsed
 manifest; the manifest's bytes are bound as well, because the store writes exactly the
