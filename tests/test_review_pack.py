@@ -289,3 +289,31 @@ def test_diff_names_a_task_retired(history, tmp_path):
     assert result["tasks"]["retired"] == ["perm2"] and result["sealed_in_a"]["all_kept"]
     n = len(store.load(history / "three").meta["history"])
     assert diff_workspaces(ws, since=n)["tasks"]["retired"] == ["perm2"]  # from the record
+
+
+# ----------------------------------------------------------------------------- record
+def test_report_states_the_record_and_its_signatures(history, tmp_path, data, capsys):
+    ws = tmp_path / "signed"
+    shutil.copytree(history / "three", ws)
+    out = tmp_path / "plain"
+    write_report(ws, out, latency=False, pdf=False)
+    md = (out / "report.md").read_text()
+    record = json.loads((out / "report.json").read_text())["evidence"]["record"]
+    assert record["passed"] and "the chain verifies" in md and "No entry is signed" in md
+    # Sign a step with a new key: the timeline says which entry is signed, by which key,
+    # and with --trust the summary names the trusted key (cryptography verifies it).
+    assert main(["key", "new", "-o", str(tmp_path / "reviewer")]) == 0
+    capsys.readouterr()
+    assert main(["unseal", str(ws), "--task", "perm1", "--reason", "new probe",
+                 "--sign", str(tmp_path / "reviewer.key")]) == 0
+    out = tmp_path / "trusted"
+    assert main(["report", str(ws), "-o", str(out), "--no-latency", "--no-pdf",
+                 "--trust", str(tmp_path / "reviewer.pub")]) == 0
+    md = (out / "report.md").read_text()
+    record = json.loads((out / "report.json").read_text())["evidence"]["record"]
+    signed = [s for s in record["signatures"] if s["status"] != "unsigned"]
+    assert signed and all(s["status"] == "trusted" for s in signed)
+    assert "checked against the trusted key" in md and "not a legal electronic signature" in md
+    timeline = md[md.index("## History"):]
+    row = next(line for line in timeline.splitlines() if "task unsealed" in line)
+    assert "new probe" in row and "yes, key" in row and "trusted" in row

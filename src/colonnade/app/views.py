@@ -14,6 +14,7 @@ from ..views.diff import changes_section
 from ..views.draw import INSTALL_HINT, GraphvizMissingError, auto_compact, format_of, to_dot
 from ..views.report import DEFAULT_PROJECT, build_report
 from .diff import fresh_check, since_diff
+from .record import verify_record
 from .transaction import read_workspace
 
 __all__ = ["cost_workspace", "write_report", "draw_workspace", "render"]
@@ -22,12 +23,14 @@ __all__ = ["cost_workspace", "write_report", "draw_workspace", "render"]
 def write_report(folder: str | Path, out: str | Path, hardware: str | Path | None = None,
                  project_n: int = DEFAULT_PROJECT, latency: bool = True, repeats: int = 20,
                  since: str | int | None = None, pdf: bool = True, check: bool = True,
-                 threads: int = 1) -> dict[str, Any]:
+                 threads: int = 1, trust: list[str | Path] | None = None) -> dict[str, Any]:
     """``colonnade report``: build the report of a workspace and write it into ``out``.
 
     The report opens with a fresh ``check`` of every sealed task (``check=False`` skips
     it and says so); ``since`` (a history entry number) adds what changed since then.
-    Every file is made in memory first, the PDF included, then each is written atomically.
+    The record (its chain, files and signatures, against ``trust`` when given) is verified
+    for the summary and the history. Every file is made in memory first, the PDF included,
+    then each is written atomically.
     """
     out = Path(out)
     if out.exists() and not out.is_dir():
@@ -36,12 +39,13 @@ def write_report(folder: str | Path, out: str | Path, hardware: str | Path | Non
     folder = Path(folder)
     net = read_workspace(folder)
     checked = fresh_check(folder, net) if check else None
+    record = verify_record(folder, trust).to_dict()
     changes = changes_data = None
     if since is not None:
         changes_data = since_diff(folder, net, since, checked, profile)
         changes = changes_section(changes_data)
     files = build_report(net, folder.resolve().name or str(folder), profile, project_n,
-                         latency, repeats, check=checked, changes=changes,
+                         latency, repeats, check=checked, record=record, changes=changes,
                          changes_data=changes_data, pdf=pdf, threads=threads)
     out.mkdir(parents=True, exist_ok=True)
     for name, data in files.items():

@@ -137,7 +137,7 @@ def _report(args: argparse.Namespace) -> int:
     result = write_report(args.workspace, args.output, hardware=args.hardware,
                           project_n=args.project, latency=not args.no_latency,
                           repeats=args.repeats, since=args.since, pdf=not args.no_pdf,
-                          check=not args.no_check, threads=args.threads)
+                          check=not args.no_check, threads=args.threads, trust=args.trust)
     print(f"wrote {', '.join(result['files'])} to {result['output']}")
     return 0
 
@@ -190,6 +190,8 @@ def add_parsers(verb: Any) -> None:
                    help="add what changed since history entry ENTRY (as 'colonnade diff "
                         "WS --since ENTRY' prints it)")
     p.add_argument("--no-pdf", action="store_true", help="skip report.pdf")
+    p.add_argument("--trust", action="append", metavar="KEY.pub",
+                   help="check the record's signatures against this public key (repeatable)")
     p.add_argument("--no-check", action="store_true",
                    help="do not repeat the seals' computations for the report (it says so)")
     p.add_argument("--hardware", metavar="PROFILE",

@@ -63,14 +63,13 @@ def _who(entry: Mapping[str, Any]) -> str:
     return str(by) if by else "not recorded"
 
 
-def _signed(entry: Mapping[str, Any]) -> str:
-    sig = entry.get("signature") or entry.get("signed")
+def _signed(entry: Mapping[str, Any], status: str | None = None) -> str:
+    sig = entry.get("signature")
     if not sig:
         return "no"
-    if isinstance(sig, Mapping):
-        key = sig.get("key") or sig.get("key_id") or sig.get("public_key")
-        return f"yes ({short_digest(key, 8)})" if key else "yes"
-    return "yes"
+    key = sig.get("key") if isinstance(sig, Mapping) else None
+    words = "yes" + (f", key {short_digest(key, 8)}" if key else "")
+    return words + (f", {status}" if status and status != "valid" else "")
 
 
 def step_text(e: Mapping[str, Any]) -> str:
@@ -137,11 +136,7 @@ def summary_section(net: ProgressiveNet, check: Mapping[str, Any] | None,
         paragraphs.append("No fresh check was run for this report.")
     else:
         paragraphs.append("No task is sealed yet, so there is nothing to check.")
-    if record:
-        paragraphs.append(f"Record: {record.get('text')}")
-    else:
-        paragraphs.append(f"Record: {len(net.meta.get('history') or [])} history entries; "
-                          f"each seal entry carries its own SHA-256, which the check verifies.")
+    paragraphs.append(record_text(record, len(net.meta.get("history") or [])))
     tot = ledger["total"]
     paragraphs.append(
         f"Network: {tot['tasks']} tasks on {tot['columns']} columns, {tot['params']:,} "
@@ -165,6 +160,33 @@ def summary_section(net: ProgressiveNet, check: Mapping[str, Any] | None,
                           "PROFILE to see the first projected task that breaks it).")
     return Section("Summary", paragraphs=paragraphs, tables=[Table(rows)], emphasis=[CAUTION],
                    anchor="summary")
+
+
+def record_text(record: Mapping[str, Any] | None, entries: int) -> str:
+    """The record's integrity and signatures in a sentence or two (``verify_record``)."""
+    if not record:
+        return f"Record: {entries} history entries; the record was not verified for this report."
+    sigs = record.get("signatures") or []
+    signed = [s for s in sigs if s.get("status") != "unsigned"]
+    keys = sorted({str(s.get("key")) for s in signed if s.get("key")})
+    if record.get("passed"):
+        head = f"Record: {record.get('entries')} entries; the chain verifies (head " \
+               f"{short_digest(record.get('head'))}), bound to the manifest and every file."
+    else:
+        first = (record.get("findings") or [{}])[0].get("message", "a finding")
+        head = f"Record: does NOT verify: {first}."
+    if not signed:
+        tail = " No entry is signed."
+    else:
+        tail = (f" {len(signed)} of {len(sigs)} entries signed, by key"
+                f"{'s' * (len(keys) != 1)} {', '.join(keys)}")
+        trusted = record.get("trusted") or []
+        tail += (f"; checked against the trusted key{'s' * (len(trusted) != 1)} "
+                 f"{', '.join(trusted)}." if trusted else
+                 "; no trusted key was given (--trust KEY.pub), so the signatures show only "
+                 "that the record is unchanged since it was signed, not who signed it.")
+    return head + tail + (" A signature here is a software record, not a legal electronic "
+                          "signature." if signed else "")
 
 
 # ----------------------------------------------------------------------------- seals
@@ -193,11 +215,14 @@ def seal_sections(net: ProgressiveNet, check: Mapping[str, Any] | None,
         metrics = entry.get("metrics") or {}
         v = verdict_of(check, task)
         versions = seals_of(net, task)
+        made = next((e for e in net.meta.get("history") or [] if isinstance(e, Mapping)
+                     and e.get("step") == "task_sealed" and e.get("task") == task
+                     and e.get("version") == entry.get("version")), {})
         facts = [["field", "value"],
                  ["seal version", f"v{entry.get('version')} of {len(versions)}"],
                  ["sealed at", str(entry.get("time"))],
-                 ["sealed by", _who(entry)],
-                 ["reason", str(entry.get("reason") or "not recorded")],
+                 ["sealed by", _who(entry) if entry.get("by") else _who(made)],
+                 ["reason", str(entry.get("reason") or made.get("reason") or "none given")],
                  ["check now", _verdict_words(v, True)],
                  ["closure digest", short_digest(closure.get("sha256"))],
                  ["closure", f"columns {closure.get('columns')}, "
@@ -235,8 +260,10 @@ def seal_sections(net: ProgressiveNet, check: Mapping[str, Any] | None,
 
 
 # ----------------------------------------------------------------------------- history
-def timeline_section(net: ProgressiveNet) -> Section:
-    """Every history entry in order: step, task, who, when, reason, signed."""
+def timeline_section(net: ProgressiveNet, record: Mapping[str, Any] | None = None) -> Section:
+    """Every history entry in order: step, task, who, when, reason, signed (and how the
+    signature stood when the record was verified)."""
+    status = {s.get("seq"): s.get("status") for s in (record or {}).get("signatures") or []}
     rows = [["#", "step", "task", "what", "who", "when", "reason", "signed"]]
     for i, e in enumerate(net.meta.get("history") or [], start=1):
         if not isinstance(e, Mapping):
@@ -244,7 +271,7 @@ def timeline_section(net: ProgressiveNet) -> Section:
             continue
         rows.append([str(i), str(e.get("step", "?")).replace("_", " "), str(e.get("task") or ""),
                      step_text(e), _who(e), str(e.get("time") or ""),
-                     str(e.get("reason") or ""), _signed(e)])
+                     str(e.get("reason") or ""), _signed(e, status.get(i))])
     return Section("History", paragraphs=[
         "The workspace's record, oldest first. Entry numbers are what 'colonnade diff "
         "--since N' and 'report --since N' take."], tables=[Table(rows)], anchor="history")

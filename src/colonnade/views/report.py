@@ -248,7 +248,7 @@ def build_report(net: ProgressiveNet, name: str, hardware: Any = None,
     seals, confusion = seal_sections(net, check)
     figures.update(confusion)
     sections = [summary_section(net, check, ledger, record, generated), *seals,
-                timeline_section(net)]
+                timeline_section(net, record)]
     if changes is not None:
         sections.append(changes)
     sections += _cost_sections(ledger, accuracy)
