@@ -19,16 +19,15 @@ import torch
 import torch.nn as nn
 
 from ..errors import DataError, SealedError, UsageError, WorkspaceError
-from .adapters import LateralAdapter, make_adapter
 from .adopted import AdoptedColumn
 from .adoption import AdoptionMixin
 from .architecture import ArchitectureRecord
+from .closure import ClosureQueries
+from .growth_edits import GrowthEdits
 from .guard import guard, guard_state, is_sealed
-from .layers import Shape, check_width
+from .layers import Shape
 from .normalization import InputNormalization
 from .parts import (
-    CLOSURE_DEFINITION,
-    CLOSURE_DEFINITIONS,
     MAX_CLASSES,
     AdapterInfo,
     Block,
@@ -45,7 +44,7 @@ __all__ = ["ProgressiveNet", "Column", "Block", "TaskInfo", "ColumnInfo", "Adapt
 TASK_NAME = re.compile(r"^[A-Za-z][A-Za-z0-9_-]{0,63}$")
 
 
-class ProgressiveNet(ArchitectureRecord, AdoptionMixin, nn.Module):
+class ProgressiveNet(ClosureQueries, GrowthEdits, ArchitectureRecord, AdoptionMixin, nn.Module):
     """A progressive network grown one column or head per task.
 
     ``net(x, task=NAME)`` returns that task's logits; ``forward_all(x)`` every task's,
@@ -128,53 +127,6 @@ class ProgressiveNet(ArchitectureRecord, AdoptionMixin, nn.Module):
         dst = self.columns[column].plan.blocks[block]
         return ([self.columns[j].plan.blocks[block - 1].out_shape for j in sources],
                 dst.pre_shape, dst.weighted)
-
-    def closure(self, task: str, definition: int = CLOSURE_DEFINITION) -> Closure:
-        """Columns, blocks and adapters reachable from the task's head through live adapters.
-
-        A head reads the last block of its column and, through head adapters, the last
-        block of each source column; an adapter into block b of column k reads block b-1
-        of its sources. Block b needs blocks 0..b-1 of its own column, so each column
-        contributes a prefix of blocks. ``definition`` 1 takes whole columns instead (how
-        seals made before block-level closures drew them).
-        """
-        info = self.task(task)
-        if definition not in CLOSURE_DEFINITIONS:
-            raise WorkspaceError(f"closure definition {definition!r} is not known to this "
-                                 f"colonnade (it knows {list(CLOSURE_DEFINITIONS)})")
-        full = {k: len(col.plan.blocks) for k, col in enumerate(self.columns)}
-        # Only a column built from the template runs block by block; any other kind of
-        # column (an adopted model, say) runs whole, so it is in a closure whole or not at
-        # all.
-        whole = {k for k, col in enumerate(self.columns) if not isinstance(col, Column)}
-        need: dict[int, int] = {info.column: full[info.column]}
-        adapters: list[str] = []
-        for key, _ in self._into_head.get(task, []):
-            adapters.append(key)
-            for j in self._sources[key]:
-                need[j] = full[j]
-        # Sources always sit to the left of their targets, so one right-to-left pass
-        # over columns collects every transitive dependency.
-        for k in range(info.column, -1, -1):
-            if k not in need:
-                continue
-            if definition == 1 or k in whole:
-                need[k] = full[k]
-            for b in range(need[k]):
-                for key, _ in self._into.get((k, b), []):
-                    adapters.append(key)
-                    for j in self._sources[key]:
-                        need[j] = max(need.get(j, 0), b)  # reads block b-1: blocks 0..b-1
-        columns = tuple(sorted(k for k, d in need.items() if d > 0 or k == info.column))
-        return Closure(task, columns, tuple(sorted(adapters)), task,
-                       {k: need[k] for k in columns}, {k: full[k] for k in columns},
-                       definition)
-
-    def closure_state(self, task: str, definition: int = CLOSURE_DEFINITION,
-                      ) -> dict[str, torch.Tensor]:
-        """The parameters and buffers a task's output depends on, by state_dict key."""
-        prefixes = self.closure(task, definition).state_prefixes()
-        return {k: v for k, v in self.state_dict().items() if k.startswith(prefixes)}
 
     def part_modules(self) -> Iterator[tuple[str, nn.Module]]:
         """Every part with its id: ``column:K``, ``adapter:KEY``, ``head:TASK``."""
@@ -297,15 +249,6 @@ class ProgressiveNet(ArchitectureRecord, AdoptionMixin, nn.Module):
             outs = self.run_columns(x, sorted(depths), depths=depths)
         return {t: self.head_logits(t, outs) for t in live}
 
-    def live_depths(self) -> dict[int, int]:
-        """Column -> leading blocks that some live task runs: what ``forward_all`` runs."""
-        depths: dict[int, int] = {}
-        for t in self.live_tasks:
-            c = self.closure(t)
-            for k in c.columns:
-                depths[k] = max(depths.get(k, 0), c.depth(k))
-        return depths
-
     # ----------------------------------------------------------------- train / freeze
     def train(self, mode: bool = True) -> ProgressiveNet:
         """Only trainable parts follow ``mode``; frozen parts stay in eval mode."""
@@ -394,11 +337,6 @@ class ProgressiveNet(ArchitectureRecord, AdoptionMixin, nn.Module):
             raise UsageError(f"normalisation std must be positive, got {list(std)}")
         self.input_norm.set(mean, std)
 
-    def _register_adapter(self, info: AdapterInfo, module: LateralAdapter) -> None:
-        self.adapters[info.key] = module
-        self.adapter_info[info.key] = info
-        self._reindex()
-
     def _reindex(self) -> None:
         into: dict[tuple[int, int], list[tuple[str, int]]] = {}
         into_head: dict[str, list[tuple[str, int]]] = {}
@@ -419,146 +357,6 @@ class ProgressiveNet(ArchitectureRecord, AdoptionMixin, nn.Module):
                 lst.sort(key=lambda item: (item[1], item[0]))
         self._into, self._into_head, self._sources = into, into_head, sources
         self._tap_index = taps
-
-    def _block_adapter(self, k: int, b: int, j: int, kind: str | None = None,
-                       tap: int | None = None) -> tuple[AdapterInfo, LateralAdapter] | None:
-        """The adapter from column ``j`` into block ``b`` of column ``k``; None when ``j``
-        is an adopted column and no tap feeds that block (model.bridges)."""
-        lat = self.spec.lateral
-        kind = kind or lat.kind
-        if isinstance(self.columns[j], AdoptedColumn):
-            return self._tap_block_adapter(k, b, kind, tap)
-        src, dst = self.columns[j].plan.blocks[b - 1], self.columns[k].plan.blocks[b]
-        module = make_adapter(kind, src.out_shape, dst.pre_shape, dst.weighted,
-                              lat.reduce, lat.activation)
-        return AdapterInfo(f"c{k}_b{b}_from_c{j}", kind, j, column=k, block=b), module
-
-    def _head_adapter(self, task: str, classes: int, j: int, kind: str | None = None,
-                      ) -> tuple[AdapterInfo, LateralAdapter]:
-        lat = self.spec.lateral
-        kind = kind or lat.kind
-        if isinstance(self.columns[j], AdoptedColumn):
-            return self._tap_head_adapter(task, classes, kind)
-        src = self.columns[j].plan.out_shape
-        module = make_adapter(kind, src, (classes,), Dense(dense=classes), lat.reduce,
-                              lat.activation)
-        return AdapterInfo(f"h_{task}_from_c{j}", kind, j, head=task), module
-
-    def _add_head(self, name: str, classes: int, column: int, mode: str,
-                  class_names: list[str] | None = None) -> list[str]:
-        self.heads[name] = self._make_head(column, classes)
-        self.task_info[name] = TaskInfo(name, classes, column, mode, class_names)
-        parts = [f"head:{name}"]
-        if self.spec.lateral.kind != "none":
-            for j in range(column):
-                info, module = self._head_adapter(name, classes, j)
-                self._register_adapter(info, module)
-                parts.append(f"adapter:{info.key}")
-        return parts
-
-    def add_column(self, name: str, classes: int, width: float = 1.0, seed: int = 0,
-                   class_names: list[str] | None = None) -> list[str]:
-        """Grow a new column, its adapters from every earlier column, and its head.
-
-        Returns the ids of the new parts, which become the only trainable ones.
-        ``class_names`` names classes 0..C-1 (recorded with the task).
-        """
-        self._check_new_task(name, classes)
-        class_names = self._check_class_names(classes, class_names)
-        if not (isinstance(width, (int, float)) and 0 < width <= 16):
-            raise UsageError(f"width must be a number in (0, 16], got {width}")
-        check_width(self.spec, float(width))
-        device = self.device
-        with torch.random.fork_rng(devices=[]):
-            torch.manual_seed(seed)
-            k = len(self.columns)
-            self.columns.append(Column(self.spec, float(width)))
-            self.column_info.append(ColumnInfo(k, name, float(width)))
-            parts = [f"column:{k}"]
-            if self.spec.lateral.kind != "none":
-                for b in range(1, len(self.columns[k].blocks)):
-                    for j in range(k):
-                        made = self._block_adapter(k, b, j)
-                        if made is None:  # an adopted column with no tap for block b
-                            continue
-                        info, module = made
-                        self._register_adapter(info, module)
-                        parts.append(f"adapter:{info.key}")
-            parts += self._add_head(name, classes, k, "column", class_names)
-        self.to(device)
-        self._make_trainable(parts)
-        return parts
-
-    def add_head(self, name: str, classes: int, on: str | None = None, seed: int = 0,
-                 class_names: list[str] | None = None) -> list[str]:
-        """Grow only a head (and its head adapters) on the column of task ``on``."""
-        self._check_new_task(name, classes)
-        class_names = self._check_class_names(classes, class_names)
-        if not self.columns:
-            raise UsageError("the network has no column yet; grow the first task with a column")
-        column = self.task(on).column if on is not None else len(self.columns) - 1
-        device = self.device
-        with torch.random.fork_rng(devices=[]):
-            torch.manual_seed(seed)
-            parts = self._add_head(name, classes, column, "head", class_names)
-        self.to(device)
-        self._make_trainable(parts)
-        return parts
-
-    def retire_adapters(self, keys: list[str], state: str, action: str,
-                        ) -> dict[str, LateralAdapter]:
-        """Take live adapters out of the forward path, as ``pruned`` or ``merged``.
-
-        The one place adapters leave the network; adapters inside a sealed task's closure
-        are refused (SealedError naming the seal) before anything changes. Returns the
-        removed modules, so that ``reinstate_adapters`` can undo it.
-        """
-        guard(self, [f"adapter:{k}" for k in keys], action)
-        removed = {}
-        for k in keys:
-            removed[k] = self.adapters[k]
-            del self.adapters[k]
-            self.adapter_info[k].state = state
-        self._reindex()
-        return removed
-
-    def reinstate_adapters(self, modules: dict[str, LateralAdapter], order: list[str]) -> None:
-        """Put retired adapters back live; ``order`` restores the ModuleDict's key order,
-        and with it the order of ``state_dict()``."""
-        self.set_adapter_modules({**dict(self.adapters.items()), **modules}, order)
-        for k in modules:
-            self.adapter_info[k].state = "live"
-        self._reindex()
-
-    def set_adapter_modules(self, modules: dict[str, LateralAdapter], order: list[str]) -> None:
-        """Refill ``adapters`` with ``modules``: keys in ``order`` first, then the rest."""
-        for k in list(self.adapters.keys()):
-            del self.adapters[k]
-        for k in order:
-            if k in modules:
-                self.adapters[k] = modules[k]
-        for k, m in modules.items():
-            if k not in self.adapters:
-                self.adapters[k] = m
-        self._reindex()
-
-    def remove_task(self, name: str) -> None:
-        """Undo the newest growth step (used to roll back a failed grow)."""
-        if not self.tasks or self.tasks[-1] != name or self.task_info[name].mode == "adopted":
-            raise UsageError(f"only the newest grown task can be removed, not {name!r}")
-        guard(self, [f"head:{name}"], "remove")
-        info = self.task_info.pop(name)
-        del self.heads[name]
-        for key in [k for k, a in self.adapter_info.items()
-                    if a.head == name or (info.mode == "column" and a.column == info.column)]:
-            del self.adapter_info[key]
-            if key in self.adapters:
-                del self.adapters[key]
-        if info.mode == "column":
-            del self.columns[info.column]
-            self.column_info.pop()
-        self._reindex()
-        self.freeze()
 
     # ----------------------------------------------------------------- persistence
     def load_state_dict(self, state_dict: Any, strict: bool = True, assign: bool = False,
