@@ -29,7 +29,7 @@ from ..clock import now
 from ..errors import ColonnadeError, SealedError, UsageError
 from ..model.adapters import JointAdapter, LinearAdapter, NonlinearAdapter
 from ..model.digest import closure_digests
-from ..model.guard import closure_definition
+from ..model.guard import closure_definition, sealed_tasks
 from ..model.network import Column, ProgressiveNet
 from ..model.parts import CLOSURE_DEFINITION
 from .standalone import FORMAT, LAYERS, VERSION, ArtifactModel
@@ -197,12 +197,8 @@ def _normalization(net: ProgressiveNet) -> dict[str, list[float]] | None:
 
 def _seal_of(net: ProgressiveNet, task: str) -> dict[str, Any] | None:
     """The task's newest active seal as recorded in ``net.meta``, read defensively."""
-    seals = net.meta.get("seals")
-    versions = seals.get(task) if isinstance(seals, dict) else None
-    if not isinstance(versions, list) or not versions or not isinstance(versions[-1], dict):
-        return None
-    entry = versions[-1]
-    if entry.get("unsealed"):
+    entry = sealed_tasks(net).get(task)
+    if entry is None:
         return None
     closure = entry.get("closure") if isinstance(entry.get("closure"), dict) else {}
     return {"version": entry.get("version"), "time": entry.get("time"),

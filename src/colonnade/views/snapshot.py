@@ -22,6 +22,7 @@ from ..errors import UsageError
 from ..model.digest import closure_digests
 from ..model.guard import seals_of
 from ..model.network import ProgressiveNet
+from ..model.seal_index import active_seals
 
 __all__ = ["Snapshot", "snapshot_of", "snapshot_at", "GROWTH_STEPS", "entry_index"]
 
@@ -60,9 +61,7 @@ class Snapshot:
         return set(self.digests)
 
     def active_seal(self, task: str) -> dict[str, Any] | None:
-        versions = self.seals.get(task) or []
-        last = versions[-1] if versions else None
-        return last if isinstance(last, dict) and not last.get("unsealed") else None
+        return active_seals(self.seals, [task]).get(task)
 
 
 def snapshot_of(net: ProgressiveNet, label: str) -> Snapshot:
