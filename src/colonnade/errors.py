@@ -10,6 +10,8 @@ __all__ = [
     "WorkspaceError",
     "SealedError",
     "UsageError",
+    "BusyError",
+    "InterruptedAfterCommit",
 ]
 
 
@@ -37,3 +39,20 @@ class SealedError(ColonnadeError):
 
 class UsageError(ColonnadeError):
     """Flags or arguments that do not fit together."""
+
+
+class BusyError(ColonnadeError):
+    """Another process holds the workspace's writer lock; the message names it.
+
+    Its own exit code (3) lets scripts tell "try again later" from a refusal.
+    """
+
+    exit_code = 3
+
+
+class InterruptedAfterCommit(KeyboardInterrupt):
+    """Ctrl-C arrived while a commit was being made and the commit was finished anyway.
+
+    A KeyboardInterrupt, so anything that stops on Ctrl-C still stops; the CLI tells the
+    user that the change was committed instead of saying the workspace is unchanged.
+    """
