@@ -87,6 +87,11 @@ colonnade cost "$INS/workspace" --no-latency
 if command -v dot >/dev/null 2>&1; then
   colonnade draw "$INS/workspace" -o "$INS/architecture.svg"
 fi
+# Both tasks ship as one ONNX file: the classifier's own graph, node for node, with the
+# oil-stain column reading its taps; the certified task stays bit-identical to the
+# classifier run alone, and the file is checked like any artifact.
+colonnade export "$INS/workspace" --all -o "$INS/station.onnx"
+colonnade check "$INS/workspace" --artifact "$INS/station.onnx"
 colonnade check "$INS/workspace"
 
 echo "== what changed with the last task (exits non-zero if a task sealed before it moved)"

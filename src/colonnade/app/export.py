@@ -39,12 +39,13 @@ from ..files.artifact import (
     artifact_architecture,
     artifact_blob,
     artifact_meta,
-    artifact_model,
     artifact_state,
+    refuse_adopted_pt,
     torch_bytes,
 )
-from ..files.onnx_export import onnx_bytes, read_metadata, with_metadata
-from ..files.quantize import QUANTISATION, quantize_int8, size_breakdown
+from ..files.compose import onnx_artifact
+from ..files.onnx_export import read_metadata
+from ..files.quantize import QUANTISATION, size_breakdown
 from ..files.runtime import (
     RUN_BATCH,
     RUN_THREADS,
@@ -214,14 +215,13 @@ def _build(net: ProgressiveNet, names: list[str], kind: str, int8: bool,
            ) -> tuple[bytes, dict[str, Any], Runner]:
     meta = artifact_meta(net, names, "int8" if int8 else "float32",
                          calibration[1] if calibration else None)
-    blob = artifact_blob(net, names, meta)
+    blob = artifact_blob(net, names, meta, program=kind == "pt")
     if kind == "pt":
+        refuse_adopted_pt(blob)
         data = torch_bytes(blob)
         # The runner reads the bytes as written, the way a service will.
         return data, meta, torch_runner(torch.load(io.BytesIO(data), weights_only=True))
-    data = onnx_bytes(artifact_model(blob), list(net.input_shape), meta)
-    if int8:
-        data = with_metadata(quantize_int8(data, calibration[0]), meta)
+    data = onnx_artifact(net, blob, meta, calibration[0] if int8 else None)
     return data, meta, onnx_runner(data)
 
 

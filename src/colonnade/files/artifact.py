@@ -28,14 +28,17 @@ from .._version import __version__
 from ..clock import now
 from ..errors import ColonnadeError, SealedError, UsageError
 from ..model.adapters import JointAdapter, LinearAdapter, NonlinearAdapter
+from ..model.adopted import AdoptedColumn
 from ..model.digest import closure_digests
+from ..model.exported import load_exported_program
 from ..model.guard import closure_definition, sealed_tasks
 from ..model.network import Column, ProgressiveNet
 from ..model.parts import CLOSURE_DEFINITION
-from .standalone import FORMAT, LAYERS, VERSION, ArtifactModel
+from .standalone import FORMAT, LAYERS, VERSION, ArtifactModel, program_column
 
 __all__ = ["ExportError", "describe_layer", "artifact_architecture", "artifact_state",
-           "artifact_meta", "artifact_blob", "artifact_model", "torch_bytes", "joint_closure"]
+           "artifact_meta", "artifact_blob", "artifact_model", "torch_bytes", "joint_closure",
+           "refuse_adopted_pt", "adopted_description", "adopted_program"]
 
 
 _NORM = "input_norm."  # state_dict prefix of the network's input normalisation
@@ -60,6 +63,7 @@ _ARGS: dict[str, tuple[str, ...]] = {
     "AvgPool1d": ("kernel_size", "stride", "padding", "ceil_mode", "count_include_pad"),
     "AdaptiveAvgPool1d": ("output_size",),
     "Flatten": ("start_dim", "end_dim"),
+    "Upsample": ("size", "scale_factor", "mode", "align_corners", "recompute_scale_factor"),
 }
 _ARGS["Conv2d"] = _ARGS["Conv1d"]
 _ARGS["BatchNorm2d"] = _ARGS["BatchNorm1d"]
@@ -89,6 +93,14 @@ def describe_layer(module: nn.Module) -> dict[str, Any]:
 
 
 def _adapter_steps(key: str, module: nn.Module) -> list[dict[str, Any]]:
+    steps = _own_steps(key, module)
+    if getattr(module, "bridge", None) is not None:  # a tap's shape bridge runs first
+        steps.insert(0, {"op": "module", "name": "bridge",
+                         "layer": describe_layer(module.bridge)})
+    return steps
+
+
+def _own_steps(key: str, module: nn.Module) -> list[dict[str, Any]]:
     if type(module) is LinearAdapter:
         order = [("module", "U")]
     elif type(module) is NonlinearAdapter:
@@ -111,6 +123,21 @@ def _adapter_steps(key: str, module: nn.Module) -> list[dict[str, Any]]:
     return steps
 
 
+def adopted_description(col: AdoptedColumn) -> dict[str, Any]:
+    """Column 0 as the artifact names it: the adopted model's format, file digest and taps
+    (its outputs are ``[tap_1, ..., tap_n, logits]``)."""
+    rec = col.record
+    return {"format": rec.format, "runtime": rec.runtime, "sha256": rec.sha256,
+            "taps": list(rec.taps), "tap_shapes": [list(s) for s in rec.tap_shapes],
+            "classes": rec.classes, "outputs": len(rec.taps) + 1}
+
+
+def _tap_read(net: ProgressiveNet, key: str) -> int | None:
+    """The tap index an adapter reads of an adopted column, or None (the usual block)."""
+    tap = net.adapter_info[key].extra.get("tap")
+    return None if tap is None else int(tap)
+
+
 def _check_tasks(net: ProgressiveNet, tasks: list[str]) -> list[str]:
     if not tasks:
         raise UsageError("name at least one task to export")
@@ -120,11 +147,6 @@ def _check_tasks(net: ProgressiveNet, tasks: list[str]) -> list[str]:
         if getattr(info, "state", "live") != "live":
             raise UsageError(f"task {task!r} is retired, so it is no longer exported; name "
                              f"live tasks only")
-        if getattr(net, "adopted", None) is not None and 0 in net.closure(task).columns:
-            raise UsageError(f"task {task!r} reads the adopted model in column 0, which "
-                             f"cannot be written as an artifact with the new parts yet; "
-                             f"ship the adopted model's own file beside the workspace's "
-                             f"predictions instead")
         if task in seen:
             raise UsageError(f"task {task!r} is named twice; name each task once")
         seen.append(task)
@@ -151,9 +173,12 @@ def artifact_architecture(net: ProgressiveNet, tasks: list[str]) -> dict[str, An
     columns, adapters = [], []
     for k, depth in joint_closure(net, tasks)[0].items():
         col = net.columns[k]
-        if type(col) is not Column:  # e.g. an adopted model: not plain torch layers
+        if isinstance(col, AdoptedColumn):  # run as it stands: never described as layers
+            columns.append({"index": k, "adopted": adopted_description(col)})
+            continue
+        if type(col) is not Column:
             raise ExportError(f"column {k} ({type(col).__name__}) cannot be written as an "
-                              f"artifact yet; export tasks whose closure leaves it out")
+                              f"artifact; export tasks whose closure leaves it out")
         blocks = list(col.blocks)[:depth]  # only the blocks the tasks run
         columns.append({
             "index": k,
@@ -165,15 +190,17 @@ def artifact_architecture(net: ProgressiveNet, tasks: list[str]) -> dict[str, An
             for key, _ in net.adapters_into_block(k, b):
                 adapters.append({"key": key, "sources": list(net.adapter_sources(key)),
                                  "column": k, "block": b, "head": None,
+                                 "reads": _tap_read(net, key),
                                  "steps": _adapter_steps(key, net.adapters[key])})
     heads = []
     for task in tasks:
         for key, _ in net.adapters_into_head(task):
             adapters.append({"key": key, "sources": list(net.adapter_sources(key)),
                              "column": None, "block": None, "head": task,
+                             "reads": _tap_read(net, key),
                              "steps": _adapter_steps(key, net.adapters[key])})
         heads.append({"task": task, "head": describe_layer(net.heads[task]),
-                      "head_column": net.task(task).column})
+                      "head_column": net.task(task).column, "reads": net.head_reads(task)})
     normalized = any(k.startswith(_NORM) for k in net.state_dict())
     return {"tasks": heads, "columns": columns, "adapters": adapters,
             "normalize_shape": list(net.input_shape) if normalized else None}
@@ -243,29 +270,82 @@ def artifact_meta(net: ProgressiveNet, tasks: list[str], precision: str = "float
         rows.append({"name": task, "output": task, "classes": net.task(task).classes,
                      "class_names": _class_names(net, task), "closure_sha256": digest,
                      "seal": seal})
+    adopted = [adopted_description(net.columns[k]) for k in joint_closure(net, tasks)[0]
+               if isinstance(net.columns[k], AdoptedColumn)]
     return {"format": FORMAT, "version": VERSION, "export_id": secrets.token_hex(8),
             "tasks": rows, "input_shape": list(net.input_shape),
+            "adopted": adopted[0] if adopted else None,
             "normalize": _normalization(net),
             "precision": precision, "calibration": calibration, "record_head": _record_head(net),
             "spec": net.spec.name, "colonnade": __version__,
             "torch": str(torch.__version__), "exported": now()}
 
 
+def adopted_program(col: AdoptedColumn) -> bytes:
+    """An adopted torch column as ``torch.export`` program bytes, for a .pt artifact.
+
+    A ``.pt2`` column ships its own file, unchanged (the bytes whose SHA-256 its seal
+    covers). A column adopted from Python code is captured by ``torch.export.export``
+    (batch dimension dynamic), since its class cannot travel in a file that loads without
+    running code; the export's checks then prove its outputs bit-identical or refuse.
+    """
+    if col.data is not None:
+        return col.data
+    example = torch.zeros(2, *col.record.input)
+    try:
+        program = torch.export.export(col.model, (example,),
+                                      dynamic_shapes=({0: torch.export.Dim("batch")},))
+    except Exception as exc:  # torch.export raises many kinds for code it cannot capture
+        raise ExportError(f"torch.export cannot capture the adopted module "
+                          f"({type(exc).__name__}); export to FILE.onnx, or adopt a .pt2 "
+                          f"program") from None
+    buf = io.BytesIO()
+    torch.export.save(program, buf)
+    return buf.getvalue()
+
+
 def artifact_blob(net: ProgressiveNet, tasks: list[str], meta: dict[str, Any] | None = None,
-                  ) -> dict[str, Any]:
-    """The dictionary a .pt artifact holds (see standalone.py)."""
+                  program: bool = False) -> dict[str, Any]:
+    """The dictionary a .pt artifact holds (see standalone.py); ``program`` adds an
+    adopted torch column's program (``adopted_program``) when the tasks read it."""
     tasks = _check_tasks(net, tasks)
-    return {"format": FORMAT, "version": VERSION,
+    blob = {"format": FORMAT, "version": VERSION,
             "architecture": artifact_architecture(net, tasks),
             "state": artifact_state(net, tasks),
             "meta": meta if meta is not None else artifact_meta(net, tasks)}
+    adopted = [c["adopted"] for c in blob["architecture"]["columns"] if "adopted" in c]
+    if program and adopted and adopted[0]["runtime"] == "torch":
+        data = adopted_program(net.adopted)
+        blob["adopted_program"] = torch.frombuffer(bytearray(data), dtype=torch.uint8)
+    return blob
 
 
-def artifact_model(blob: dict[str, Any]) -> ArtifactModel:
-    """The blob's model, frozen, in eval mode: one output per task."""
+def artifact_model(blob: dict[str, Any], adopted: nn.Module | None = None) -> ArtifactModel:
+    """The blob's model, frozen, in eval mode: one output per task.
+
+    ``adopted`` (a copy of the network's adopted torch column) runs as column 0; else the
+    blob's own adopted program does, read without running code from it
+    (model.exported); else an adopted column's outputs are inputs of the model
+    (``ArtifactModel.given``, an adopted ONNX model run beside it).
+    """
     model = ArtifactModel(blob["architecture"])
+    if adopted is None:
+        adopted = program_column(blob, load_exported_program)
+    if adopted is not None:
+        model.attach_adopted(model.given[0], adopted)
     model.load_state_dict(blob["state"], strict=True)
     return model.requires_grad_(False).eval()
+
+
+def refuse_adopted_pt(blob: dict[str, Any]) -> None:
+    """A .pt artifact is run by torch alone: an adopted ONNX model cannot be in it."""
+    for col in blob["architecture"]["columns"]:
+        adopted = col.get("adopted")
+        if adopted is not None and adopted["runtime"] != "torch":
+            raise ExportError(f"the tasks read the adopted {adopted['format']} model, which "
+                              f"runs in {adopted['runtime']} and cannot be put in a torch .pt "
+                              f"file; export them to FILE.onnx, which keeps its graph "
+                              f"unchanged")
 
 
 def torch_bytes(blob: dict[str, Any]) -> bytes:

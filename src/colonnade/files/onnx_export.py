@@ -29,7 +29,7 @@ from ..errors import ColonnadeError
 from .standalone import ArtifactModel
 
 __all__ = ["ONNX_OPSET", "INPUT_NAME", "onnx_bytes", "with_metadata", "read_metadata",
-           "META_KEY"]
+           "META_KEY", "export_model", "import_onnx", "strip_traces"]
 
 ONNX_OPSET = 18
 INPUT_NAME = "x"
@@ -54,7 +54,7 @@ def _quiet() -> Iterator[None]:
         logger.setLevel(level)
 
 
-def _import_onnx() -> Any:
+def import_onnx() -> Any:
     try:
         import onnx
         import onnxscript  # noqa: F401 (the exporter needs it)
@@ -64,7 +64,7 @@ def _import_onnx() -> Any:
     return onnx
 
 
-def _strip_traces(proto: Any) -> None:
+def strip_traces(proto: Any) -> None:
     """Drop what the exporter notes on every node and value: the Python stack trace (paths
     of the exporting machine), FX node text and module names. They are debugging aids,
     they made up most of a small model's file, and an artifact should carry no paths."""
@@ -77,12 +77,14 @@ def _strip_traces(proto: Any) -> None:
         del tensor.metadata_props[:]
 
 
-def with_metadata(data: bytes, meta: dict[str, Any]) -> bytes:
+def with_metadata(data: bytes, meta: dict[str, Any], strip: bool = True) -> bytes:
     """The ONNX model ``data`` with the artifact's metadata set in ``metadata_props`` and
-    the exporter's per-node traces removed."""
-    onnx = _import_onnx()
+    (``strip``) the exporter's per-node traces removed; an artifact holding an adopted
+    ONNX graph is not stripped, so the adopted nodes stay as they were (compose.py)."""
+    onnx = import_onnx()
     proto = onnx.load_from_string(data)
-    _strip_traces(proto)
+    if strip:
+        strip_traces(proto)
     del proto.metadata_props[:]
     props = {META_KEY: json.dumps(meta, sort_keys=True),
              "colonnade.tasks": json.dumps([t["name"] for t in meta["tasks"]]),
@@ -104,7 +106,7 @@ def with_metadata(data: bytes, meta: dict[str, Any]) -> bytes:
 
 def read_metadata(data: bytes) -> dict[str, Any] | None:
     """The artifact metadata stored in an ONNX model, or None if it holds none."""
-    onnx = _import_onnx()
+    onnx = import_onnx()
     try:
         proto = onnx.load_from_string(data)
         props = {p.key: p.value for p in proto.metadata_props}
@@ -114,13 +116,25 @@ def read_metadata(data: bytes) -> dict[str, Any] | None:
     return meta if isinstance(meta, dict) else None
 
 
+def export_model(model: torch.nn.Module, examples: tuple[torch.Tensor, ...],
+                 input_names: list[str], output_names: list[str],
+                 opset: int = ONNX_OPSET) -> bytes:
+    """``model`` as ONNX through the torch.export-based exporter, batch dimension dynamic
+    on every input; ``model.forward`` takes ``(x, *given)`` (``ArtifactModel``)."""
+    import_onnx()
+    batch = torch.export.Dim("batch")
+    dynamic: tuple[Any, ...] = ({0: batch},)
+    if len(examples) > 1:  # the varargs are one more entry, a tuple of their own
+        dynamic += (tuple({0: batch} for _ in examples[1:]),)
+    with _quiet():
+        program = torch.onnx.export(model, examples, dynamo=True, opset_version=opset,
+                                    input_names=input_names, output_names=output_names,
+                                    dynamic_shapes=dynamic, verbose=False)
+    return program.model_proto.SerializeToString()
+
+
 def onnx_bytes(model: ArtifactModel, input_shape: list[int], meta: dict[str, Any]) -> bytes:
     """The artifact model as ONNX (batch dimension dynamic), its metadata inside."""
-    _import_onnx()
-    example = torch.zeros(2, *input_shape)
-    batch = torch.export.Dim("batch")
-    with _quiet():
-        program = torch.onnx.export(model, (example,), dynamo=True, opset_version=ONNX_OPSET,
-                                    input_names=[INPUT_NAME], output_names=list(model.tasks),
-                                    dynamic_shapes=({0: batch},), verbose=False)
-    return with_metadata(program.model_proto.SerializeToString(), meta)
+    data = export_model(model, (torch.zeros(2, *input_shape),), [INPUT_NAME],
+                        list(model.tasks))
+    return with_metadata(data, meta)

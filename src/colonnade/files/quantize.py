@@ -61,15 +61,17 @@ def _quiet() -> Iterator[None]:
         root.setLevel(level)
 
 
-def _reader(x: np.ndarray) -> Any:
+def _reader(feeds: dict[str, np.ndarray]) -> Any:
     from onnxruntime.quantization import CalibrationDataReader
+
+    rows = next(iter(feeds.values())).shape[0]
 
     class _Batches(CalibrationDataReader):
         """The calibration rows in fixed batches, once through."""
 
         def __init__(self) -> None:
-            self._it = iter([{INPUT_NAME: x[i:i + CALIBRATION_BATCH]}
-                             for i in range(0, x.shape[0], CALIBRATION_BATCH)])
+            self._it = iter([{k: v[i:i + CALIBRATION_BATCH] for k, v in feeds.items()}
+                             for i in range(0, rows, CALIBRATION_BATCH)])
 
         def get_next(self) -> dict[str, np.ndarray] | None:
             return next(self._it, None)
@@ -77,21 +79,24 @@ def _reader(x: np.ndarray) -> Any:
     return _Batches()
 
 
-def quantize_int8(float_model: bytes, calibration: np.ndarray) -> bytes:
-    """The float ONNX model quantised to int8 (QDQ), calibrated on ``calibration`` rows."""
+def quantize_int8(float_model: bytes, calibration: np.ndarray | dict[str, np.ndarray],
+                  ) -> bytes:
+    """The float ONNX model quantised to int8 (QDQ), calibrated on ``calibration`` rows
+    (the input ``x``, or feeds by input name for a model of several inputs)."""
     try:
         from onnxruntime.quantization import QuantFormat, QuantType, quantize_static
         from onnxruntime.quantization.shape_inference import quant_pre_process
     except ImportError:
         raise QuantisationFailed("int8 export needs onnxruntime; install it with pip install "
                                  "'colonnade[onnx]'") from None
-    x = np.ascontiguousarray(calibration, dtype=np.float32)
+    feeds = calibration if isinstance(calibration, dict) else {INPUT_NAME: calibration}
+    feeds = {k: np.ascontiguousarray(v, dtype=np.float32) for k, v in feeds.items()}
     with tempfile.TemporaryDirectory(prefix="colonnade-int8-") as tmp, _quiet():
         src, pre, out = (Path(tmp) / n for n in ("float.onnx", "pre.onnx", "int8.onnx"))
         src.write_bytes(float_model)
         try:
             quant_pre_process(str(src), str(pre))
-            quantize_static(str(pre), str(out), _reader(x), quant_format=QuantFormat.QDQ,
+            quantize_static(str(pre), str(out), _reader(feeds), quant_format=QuantFormat.QDQ,
                             per_channel=True, activation_type=QuantType.QUInt8,
                             weight_type=QuantType.QInt8)
         except Exception as exc:  # onnxruntime raises many kinds; name it in one sentence
