@@ -241,16 +241,30 @@ class _Tuner:
         return evaluate(net, self.task, self.x, self.y)
 
 
+def tap_merge_refusal(net: ProgressiveNet, key: str) -> str:
+    """Why an adapter reading an adopted column's tap is not merged, in one sentence."""
+    extra = net.adapter_info[key].extra
+    return (f"it reads the adopted model's tap {extra.get('tap_name')!r}, a different output "
+            f"of column 0 than the block the other columns' adapters read, through its own "
+            f"shape bridge (pooling, flattening or resampling), so its input cannot be "
+            f"concatenated with theirs into one joint adapter; it is kept as it is and can "
+            f"still be pruned")
+
+
 def _merge_pass(net: ProgressiveNet, report: TrimReport, owned: list[str],
                 x: torch.Tensor, y: torch.Tensor) -> None:
     """Fold each layer's remaining single-source adapters into one joint adapter."""
     by_layer: dict[str, list[str]] = {}
+    taps: dict[str, list[str]] = {}
     for key, layer, _ in task_adapters(net, report.task):
-        # Adapters reading an adopted column's taps are pruned, never merged: each reads
-        # its tap through its own shape bridge, so their sources do not concatenate.
-        if (key in owned and len(net.adapter_sources(key)) == 1
-                and "tap" not in net.adapter_info[key].extra):
-            by_layer.setdefault(layer, []).append(key)
+        if key in owned and len(net.adapter_sources(key)) == 1:
+            # Adapters reading an adopted column's taps are pruned, never merged.
+            group = taps if "tap" in net.adapter_info[key].extra else by_layer
+            group.setdefault(layer, []).append(key)
+    for layer, keys in taps.items():
+        if by_layer.get(layer):  # a merge with the layer's other adapters was possible
+            report.merges_rejected.append({"adapters": keys, "layer": layer,
+                                           "reason": tap_merge_refusal(net, keys[0])})
     for layer, keys in by_layer.items():
         if len(keys) < 2 or _target_met(report, net):
             continue
