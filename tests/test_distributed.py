@@ -17,6 +17,7 @@ from conftest import permuted_digit_tasks, snapshot
 import colonnade
 from colonnade.app.distributed_grow import GrowRequest, grow_distributed
 from colonnade.app.evidence import check_workspace, seal_workspace
+from colonnade.app.record import history, new_key, verify_record
 from colonnade.app.workspace import grow_workspace
 from colonnade.training.distributed import WorkerFailed
 from colonnade.training.fit import evaluate
@@ -122,12 +123,20 @@ def test_torchrun_launch_gives_the_same_model_as_nproc(sealed_workspace, tmp_pat
     tmp, ws, _ = sealed_workspace
     a, b = _copy(ws, tmp_path / "a"), _copy(ws, tmp_path / "b")
     grow_distributed(GrowRequest(str(a), "perm1", str(tmp / "perm1.npz")), 2, progress=False)
+    key = new_key(tmp_path / "runner")
     proc = subprocess.run([sys.executable, "-m", "torch.distributed.run", "--standalone",
                            "--nproc-per-node", "2", "-m", "colonnade", "grow", str(b),
-                           "--task", "perm1", "--train", str(tmp / "perm1.npz"), "--quiet"],
+                           "--task", "perm1", "--train", str(tmp / "perm1.npz"), "--quiet",
+                           "--by", "Ranks Runner", "--reason", "scaled out",
+                           "--sign", key["key"]],
                           capture_output=True, text=True, timeout=300)
     assert proc.returncode == 0, proc.stderr[-2000:]
     assert proc.stdout.count("grew task 'perm1'") == 1  # rank 0 alone reports
+    # The launching command's attribution reaches the rank that commits.
+    grown = history(b)[-1]
+    assert (grown.step, grown.by, grown.reason) == ("column_added", "Ranks Runner",
+                                                    "scaled out")
+    assert verify_record(b, trust=[key["public"]]).passed
     na, nb = colonnade.load(a), colonnade.load(b)
     sa, sb = na.state_dict(), nb.state_dict()
     assert sa.keys() == sb.keys()

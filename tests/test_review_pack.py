@@ -100,6 +100,14 @@ def test_report_leads_with_the_evidence(history, tmp_path):
         assert f"### Seal of {task}" in md and digest[:12] in md  # short form
         section = md[md.index(f"### Seal of {task}"):]
         assert "| check now | exact |" in section[:2000]
+        # The kept probe's long name is shortened in the table (its first 12 hex digits)
+        # and given whole below it; report.json keeps it whole.
+        kept = entry["probe"]["file"]
+        assert f"| probe kept as | {kept[:18]}\u2026.npz |" in section
+        assert f"Probe kept in the workspace as {kept};" in section
+        assert data["evidence"]["seals"][task]["probe"]["file"] == kept
+        html_text = (out / "report.html").read_text(encoding="utf-8")
+        assert f"<td class=\"text\">{kept[:18]}\u2026.npz</td>" in html_text
         figure = f"confusion_{task}.png"
         assert figure in data["figures"] and f"]({figure})" in md
         assert (out / figure).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
@@ -152,6 +160,7 @@ def test_pdf_keeps_every_column_and_task(history, tmp_path):
         assert header in text, header
     for task, entry in data["evidence"]["seals"].items():
         assert entry["closure"]["sha256"][:12] in text and f"Seal of {task}" in text
+        assert entry["probe"]["file"][:18] in text  # the kept probe's digest prefix
     # First page: the caution. Every page: its number, the workspace, the generation time.
     assert "not a safety certification" in pages[0]
     for n, page in enumerate(pages, start=1):

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import copy
 import hashlib
+import io
 import struct
 
 import numpy as np
@@ -117,13 +118,30 @@ def sealed_ws(tmp_path_factory):
         grow_and_seal(net, t, write_probe(root, t), workspace=ws)
     colonnade.grow(net, tasks[2]["name"], task_data(tasks[2]), epochs=1, progress=False)
     store.save(net, ws)
-    # The probe is kept inside the workspace, named by its SHA-256 (hashlib is the
-    # reference); where it was read from is kept for information only.
+    # The probe's samples are kept inside the workspace in a file named by its own
+    # SHA-256; the source's SHA-256 and path are kept for information (hashlib is the
+    # reference for both digests, numpy's own reader for the kept arrays).
     probe = guard.latest_seal(net, "perm0")["probe"]
-    digest = hashlib.sha256((root / "perm0_probe.npz").read_bytes()).hexdigest()
-    assert probe["file"] == f"probe-{digest}.npz" and (ws / probe["file"]).is_file()
+    source = root / "perm0_probe.npz"
+    assert probe["sha256"] == hashlib.sha256(source.read_bytes()).hexdigest()
+    kept = kept_file(ws, probe["file"]).read_bytes()
+    assert probe["file"] == f"probe-{hashlib.sha256(kept).hexdigest()}.npz"
+    assert probe["file_sha256"] == hashlib.sha256(kept).hexdigest()
     assert probe["source"] == "../perm0_probe.npz"
+    with np.load(io.BytesIO(kept), allow_pickle=False) as z, np.load(source) as original:
+        assert z["x"].dtype == np.float32 and z["y"].dtype == np.int64
+        assert z["x"].tobytes() == original["x"].astype(np.float32).tobytes()
+        assert z["y"].tolist() == original["y"].tolist()
     return root
+
+
+def kept_file(ws, name: str):
+    """Where the store keeps the workspace file ``name`` (found by its name's stem, so the
+    test holds whatever folder layout the store uses)."""
+    stem = name.split(".")[0]
+    found = [p for p in ws.rglob(f"{stem}*") if p.is_file() and not p.name.endswith(".prev")]
+    assert len(found) == 1, found
+    return found[0]
 
 
 @pytest.fixture
@@ -201,20 +219,21 @@ def test_a_flip_outside_every_sealed_closure_keeps_seals_exact_but_fails_the_rec
 
 
 def kept_probe(ws, task: str):
-    return ws / guard.latest_seal(store.load(ws), task)["probe"]["file"]
+    return kept_file(ws, guard.latest_seal(store.load(ws), task)["probe"]["file"])
 
 
 def test_a_changed_probe_file_is_named(ws):
     probe = kept_probe(ws, "perm0")
+    name = guard.latest_seal(store.load(ws), "perm0")["probe"]["file"]
     with np.load(probe) as z:
         x, y = z["x"].copy(), z["y"]
     x[0, 0] += 1.0
     np.savez(probe, x=x, y=y)
     report = check_workspace(ws)
-    assert not report.passed and f"file {probe.name}" in report.record.first
+    assert not report.passed and name in report.record.first
     by = {t.task: t for t in report.tasks}
     assert by["perm0"].verdict == "unverified"
-    assert any(str(probe) in f and "changed" in f for f in by["perm0"].failures)
+    assert any(name in f and "changed" in f for f in by["perm0"].failures)
     assert by["perm1"].verdict == "exact"
 
 
@@ -229,7 +248,7 @@ def test_a_missing_probe_file_is_named_and_can_be_given(ws, tmp_path):
     moved = tmp_path / "elsewhere.npz"
     probe.rename(moved)
     report = check_workspace(ws)
-    assert not report.passed and f"file {probe.name} is missing" in report.record.first
+    assert not report.passed and "is missing" in report.record.first
     by = {t.task: t for t in report.tasks}
     assert by["perm1"].verdict == "unverified"
     assert any("is not among the workspace's files" in f for f in by["perm1"].failures)

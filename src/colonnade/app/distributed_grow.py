@@ -90,8 +90,10 @@ def _timeout() -> datetime.timedelta | None:
 
 
 def run_rank(rank: int, world: int, request: GrowRequest, staging: str | None,
-             progress: bool = True) -> dict[str, Any] | None:
-    """One rank's work: grow, train on its shard, and (rank 0) write the result."""
+             progress: bool = True, who: Attribution | None = None,
+             ) -> dict[str, Any] | None:
+    """One rank's work: grow, train on its shard, and (rank 0) write the result, attributed
+    to ``who`` when it commits to the workspace itself (torchrun)."""
     device = resolve_device(request.device)
     backend = "nccl" if device.type == "cuda" else "gloo"
     if device.type == "cuda":
@@ -125,17 +127,19 @@ def run_rank(rank: int, world: int, request: GrowRequest, staging: str | None,
                 Path(staging).mkdir()
                 save(net, staging)
             else:
-                save(net, request.folder)
+                save(net, request.folder, who)
         dist.barrier()
     finally:
         dist.destroy_process_group()
     return entry if rank == 0 else None
 
 
-def run_torchrun_rank(request: GrowRequest, progress: bool = True) -> dict[str, Any] | None:
-    """This process's rank of a torchrun launch; rank 0 commits to the workspace."""
+def run_torchrun_rank(request: GrowRequest, progress: bool = True,
+                      who: Attribution | None = None) -> dict[str, Any] | None:
+    """This process's rank of a torchrun launch; rank 0 commits to the workspace, as
+    ``who`` (the launching command's ``--by``, ``--reason`` and ``--sign``)."""
     rank, world = int(os.environ["RANK"]), int(os.environ["WORLD_SIZE"])
-    return run_rank(rank, world, request, None, progress)
+    return run_rank(rank, world, request, None, progress, who if rank == 0 else None)
 
 
 def _spawned(rank: int, world: int, port: int, request: GrowRequest, staging: str,

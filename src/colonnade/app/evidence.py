@@ -25,9 +25,10 @@ def seal_workspace(folder: str | Path, task: str, probe: str | Path,
                    require_signed: bool = False) -> dict[str, Any]:
     """``colonnade seal``: seal a task of a workspace on a probe, commit once.
 
-    ``probe`` is a labelled file or class folder, or a .npy of samples with ``labels``; a
-    probe in one file is copied into the workspace. Sealing a task again needs ``reason``;
-    the returned ``changes`` say what differs from the previous seal.
+    ``probe`` is a labelled file or class folder, or a .npy of samples with ``labels``;
+    its decoded samples and labels are kept in the workspace (``evidence.kept_probe``).
+    Sealing a task again needs ``reason``; the returned ``changes`` say what differs from
+    the previous seal.
     """
     with writing(folder, "seal", by=by, reason=reason, sign=sign) as tx:
         net = tx.net
@@ -51,15 +52,21 @@ def unseal_workspace(folder: str | Path, task: str, reason: str, by: str | None 
 def check_workspace(folder: str | Path, task: str | None = None,
                     tolerance: float | None = None, probe: str | Path | None = None,
                     trust: list[str | Path] | None = None, data: str | Path | None = None,
-                    ) -> CheckReport:
+                    probe_labels: str | Path | None = None) -> CheckReport:
     """``colonnade check``: the record first (chain, files, signatures against ``trust``),
     then the newest seal of every sealed task (or of one); with ``data``, whether that
     file is the one ``task`` was trained on.
+
+    Each seal's probe is read from its copy kept in the workspace; ``probe`` (with
+    ``probe_labels`` for a .npy) names another file for ``task``. A path written in the
+    manifest is never opened (``evidence.verify.probe_for``).
     """
     if tolerance is not None and not (tolerance >= 0 and math.isfinite(tolerance)):
         raise UsageError(f"--tolerance must be a finite number of at least 0, got {tolerance}")
     if probe is not None and task is None:
         raise UsageError("--probe applies to one task; pass --task NAME with it")
+    if probe_labels is not None and probe is None:
+        raise UsageError("--probe-labels goes with --probe FILE.npy; pass both")
     if data is not None and task is None:
         raise UsageError("--data applies to one task; pass --task NAME with it")
     folder = Path(folder)
@@ -94,7 +101,7 @@ def check_workspace(folder: str | Path, task: str | None = None,
     for name in names:
         entry = sealed[name]
         try:
-            found, problem = probe_for(folder, net, name, entry, probe)
+            found, problem = probe_for(net, name, entry, probe, probe_labels)
         except (KeyError, TypeError, AttributeError):
             found, problem = None, None  # a malformed entry; check_seal names it
         results.append(check_seal(net, name, entry, found, problem, tolerance, where))

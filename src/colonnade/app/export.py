@@ -143,7 +143,7 @@ def _probe(folder: Path, net: ProgressiveNet, task: str,
     """The rows a task's agreement is measured on: its seal's probe, else its validation."""
     entry = sealed_tasks(net).get(task)
     if entry is not None:
-        probe, problem = probe_for(folder, net, task, entry, None)
+        probe, problem = probe_for(net, task, entry)
         if probe is None:
             raise WorkspaceError(f"cannot measure sealed task {task!r}: {problem}")
         return probe.x, probe.y, {"source": "seal", "version": entry.get("version"),
@@ -165,7 +165,7 @@ def _probe_again(folder: Path, net: ProgressiveNet, task: str, recorded: dict[st
         if entry is None:
             return None, (f"seal v{recorded.get('version')} of task {task!r}, whose probe "
                           f"the export used, is no longer in the workspace")
-        probe, problem = probe_for(folder, net, task, entry, None)
+        probe, problem = probe_for(net, task, entry)
         if probe is None:
             return None, problem
         return probe.x, None

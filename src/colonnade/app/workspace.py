@@ -15,7 +15,7 @@ from ..evidence.provenance import growth_provenance
 from ..files.store import atomic_write, create
 from ..model.network import ProgressiveNet
 from ..training.data import load_for_spec
-from ..training.distributed import launched_by_torchrun
+from ..training.distributed import launched_by_torchrun, torchrun_rank
 from ..training.fit import EVAL_BATCH, all_task_logits, task_logits
 from ..training.growth import grow
 from .distributed_grow import (
@@ -66,7 +66,10 @@ def grow_workspace(folder: str | Path, task: str, train: str | Path, val: str | 
         if nproc is not None:
             return grow_distributed(request, nproc, progress=progress,
                                     who=attribution("grow", by, reason, sign))
-        return run_torchrun_rank(request, progress=progress)
+        # Every rank runs the launching command line; only the rank that commits (rank 0)
+        # reads the signing key, which the other machines need not hold.
+        who = attribution("grow", by, reason, sign) if torchrun_rank() == 0 else None
+        return run_torchrun_rank(request, progress=progress, who=who)
     with writing(folder, "grow", by=by, reason=reason, sign=sign) as tx:
         return _grow(tx.net, folder, task, train, val, mode, on, width, classes, epochs,
                      device, progress, cache, cache_mb, target, options, workers)

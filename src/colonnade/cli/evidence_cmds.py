@@ -43,7 +43,8 @@ def _check(args: argparse.Namespace) -> int:
     from ..app.evidence import check_workspace
 
     report = check_workspace(args.workspace, task=args.task, tolerance=args.tolerance,
-                             probe=args.probe, trust=args.trust, data=args.data)
+                             probe=args.probe, trust=args.trust, data=args.data,
+                             probe_labels=args.probe_labels)
     if args.json:
         print_json(report.to_dict())
         return 0 if report.passed else 1
@@ -169,7 +170,10 @@ def add_parsers(verb: Any) -> None:
     p.add_argument("--task", help="check only this task")
     p.add_argument("--tolerance", type=non_negative_float,
                    help="accept logits within this absolute difference (for other hardware)")
-    p.add_argument("--probe", help="with --task: read the probe from this file instead")
+    p.add_argument("--probe", help="with --task: read the probe from this file instead of "
+                                   "the copy the seal kept in the workspace")
+    p.add_argument("--probe-labels", metavar="LABELS.npy",
+                   help="with a .npy --probe: its labels")
     p.add_argument("--artifact", metavar="FILE",
                    help="check an exported artifact instead: its digest against the history, "
                         "its outputs on the recorded probes, in the recorded runtime")

@@ -1,8 +1,9 @@
 """Seals: a task's certificate, made from its closure and a probe set.
 
 A seal records, for one task, a digest of every tensor its output depends on (its
-closure), the probe file's digest, the reference logits on the probe (kept in the
-workspace file ``seals.safetensors``) with their digest, metrics on the probe, the
+closure), the probe's samples (kept in the workspace, ``kept_probe``) and the digest
+of its source, the reference logits on the probe (kept in the workspace file
+``seals.safetensors``) with their digest, metrics on the probe, the
 environment, and how the reference was computed (batch size, thread count, dtype,
 device), so that ``verify.check_seal`` can repeat exactly that computation: bit-exactness
 is a property of the same computation, not of the same math.
@@ -32,13 +33,14 @@ import torch
 from .._version import __version__
 from ..clock import now
 from ..errors import DataError, UsageError
-from ..model.digest import closure_digests, record_digest, tensor_digest
+from ..model.digest import bytes_digest, closure_digests, record_digest, tensor_digest
 from ..model.guard import closure_architecture, latest_seal, sealed_tasks, seals_of
 from ..model.network import ProgressiveNet
 from ..training.data import load_for_spec
 from ..training.datasets import Rows
 from ..training.fit import EVAL_BATCH, task_logits
 from ..training.sources import source_digest
+from .kept_probe import KEPT_FORMAT, kept_name, pack_probe, too_large_to_keep, unpack_probe
 
 __all__ = ["SEALS_FILE", "Probe", "load_probe", "probe_metrics", "environment",
            "reference_logits", "computation_context", "seal_task", "unseal_task",
@@ -56,10 +58,12 @@ LOW_ACCURACY_MARGIN = 0.2
 
 @dataclass
 class Probe:
-    """A probe set as read from its file, with the file's SHA-256 and bytes.
+    """A probe set as read, with the SHA-256 of its source (a file, a folder, a .npy and
+    its labels file, or arrays in memory).
 
-    ``data`` (the file's bytes) is what a seal copies into the workspace, so that the
-    workspace checks on its own wherever it is copied.
+    A seal keeps its samples inside the workspace (``kept_probe``), so that the workspace
+    checks on its own wherever it is copied; ``path`` and ``labels`` say where it was
+    read from, for information only.
     """
 
     x: torch.Tensor | Rows  # Rows: a probe larger than memory, read in batches
@@ -67,13 +71,6 @@ class Probe:
     sha256: str
     path: str  # where it was read from, kept in the seal for information only
     labels: str | None = None  # a .npy probe's labels file, recorded like ``path``
-    data: bytes | None = None  # a single-file probe's bytes, kept in the workspace
-    suffix: str = ""
-
-    @property
-    def kept_name(self) -> str:
-        """The workspace file a seal keeps it in, named by its content."""
-        return f"probe-{self.sha256}{self.suffix}"
 
 
 def load_probe(path: str | Path, net: ProgressiveNet, task: str,
@@ -85,13 +82,8 @@ def load_probe(path: str | Path, net: ProgressiveNet, task: str,
     info = net.task(task)
     data = load_for_spec(path, net.spec, classes=info.classes, class_names=info.class_names,
                          need_labels=True, split=False, labels=labels)
-    # A probe in one file is kept in the workspace byte for byte (its name is its digest);
-    # a folder or a .npy with a labels file is pinned by its digest and read from its path.
-    single = labels is None and Path(path).is_file()
-    raw = Path(path).read_bytes() if single else None
     return Probe(data.x, data.y, source_digest(path, labels), _recorded(path, relative_to),
-                 None if labels is None else _recorded(labels, relative_to), raw,
-                 Path(path).suffix.lower() if single else "")
+                 None if labels is None else _recorded(labels, relative_to))
 
 
 def _recorded(path: str | Path, relative_to: str | Path | None) -> str:
@@ -225,15 +217,21 @@ def seal_task(net: ProgressiveNet, task: str, probe: Probe,
     computation = {"batch_size": int(batch_size), "threads": torch.get_num_threads(),
                    "dtype": _closure_dtype(state), "device": str(net.device),
                    "call": "forward"}
-    logits = reference_logits(net, task, probe.x, computation).contiguous()
+    # The samples are kept in the workspace, and the reference is computed on the kept
+    # copy itself, so what ``check`` reads back is exactly what the seal ran on.
+    too_large = too_large_to_keep(probe.x)
+    kept = None if too_large else pack_probe(probe.x, probe.y)
+    x, y = ((probe.x, probe.y) if kept is None
+            else unpack_probe(kept, net.input_shape, info.classes, probe.path))
+    logits = reference_logits(net, task, x, computation).contiguous()
     version = len(seals_of(net, task)) + 1
     key = reference_key(task, version)
-    probe_entry: dict[str, Any] = {"sha256": probe.sha256, "samples": int(probe.x.shape[0])}
-    if probe.data is not None:  # kept in the workspace; where it came from is information
-        probe_entry = {"file": probe.kept_name, "source": probe.path, **probe_entry}
-    else:  # a folder, or a .npy with labels: read again from its path by ``check``
-        probe_entry = {"path": probe.path, **probe_entry,
-                       **({"labels": probe.labels} if probe.labels is not None else {})}
+    probe_entry: dict[str, Any] = (
+        {"not_kept": too_large} if kept is None else
+        {"file": kept_name(kept), "format": KEPT_FORMAT, "file_sha256": bytes_digest(kept)})
+    probe_entry.update({"source": probe.path,
+                        **({"source_labels": probe.labels} if probe.labels else {}),
+                        "sha256": probe.sha256, "samples": int(x.shape[0])})
     entry: dict[str, Any] = {
         "version": version,
         "task": task,
@@ -247,7 +245,7 @@ def seal_task(net: ProgressiveNet, task: str, probe: Probe,
         "reference": {"file": SEALS_FILE, "key": key, "sha256": tensor_digest(key, logits),
                       "shape": list(logits.shape),
                       "dtype": str(logits.dtype).removeprefix("torch.")},
-        "metrics": probe_metrics(logits, probe.y, info.classes),
+        "metrics": probe_metrics(logits, y, info.classes),
         "computation": computation,
         "environment": environment(),
         "unsealed": None,
@@ -269,8 +267,8 @@ def seal_task(net: ProgressiveNet, task: str, probe: Probe,
                          f"{', '.join(changes)}")
     net.meta.setdefault("seals", {}).setdefault(task, []).append(entry)
     net.attachments.setdefault(SEALS_FILE, {})[key] = logits.cpu()
-    if probe.data is not None:
-        net.kept_files[probe.kept_name] = probe.data
+    if kept is not None:
+        net.kept_files[probe_entry["file"]] = kept
     step: dict[str, Any] = {"step": "task_sealed", "task": task, "version": version,
                             "time": entry["time"], "closure_sha256": whole,
                             "probe_sha256": probe.sha256}

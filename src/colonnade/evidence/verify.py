@@ -18,7 +18,6 @@ weights file changed outside colonnade can still be checked and the tensor named
 from __future__ import annotations
 
 import math
-import os
 from collections.abc import Mapping
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
@@ -27,10 +26,12 @@ from typing import Any
 import torch
 
 from ..errors import ColonnadeError
-from ..model.digest import raw_bytes, tensor_digest
+from ..model.digest import bytes_digest, file_digest, raw_bytes, tensor_digest
 from ..model.guard import closure_findings, sealed_tasks
 from ..model.network import ProgressiveNet
+from ..training.data import load_for_spec
 from ..training.sources import source_digest
+from .kept_probe import unpack_probe
 from .seal import (
     SEALS_FILE,
     Probe,
@@ -243,42 +244,88 @@ def check_net(net: ProgressiveNet, probes: Mapping[str, Probe], tolerance: float
     return CheckReport(None, results)
 
 
-def probe_for(folder: Path, net: ProgressiveNet, task: str, entry: Mapping[str, Any],
-               override: str | Path | None) -> tuple[Probe | None, str | None]:
-    """Read the seal's probe (or ``override``), or say in one sentence why not.
+def _not_kept(task: str, version: Any, probe_entry: Mapping[str, Any]) -> str:
+    """The one sentence for a seal that kept no copy of its probe (made before colonnade
+    kept every probe, or too large to keep): the same whatever path its manifest names,
+    so it reveals nothing about the files of the machine that checks it."""
+    labels = (" --probe-labels LABELS.npy"
+              if "labels" in probe_entry or "source_labels" in probe_entry else "")
+    why = probe_entry.get("not_kept")
+    why = why if isinstance(why, str) else "it was made before colonnade kept every probe"
+    return (f"seal v{version} of task {task!r} keeps no copy of its probe in the workspace "
+            f"({why}), and a path written in the manifest is never read; pass --task "
+            f"{task} --probe FILE{labels} with the probe it was sealed on")
 
-    A seal keeps its probe inside the workspace (``probe.file``, named by its SHA-256), so
-    a copied workspace checks on its own; the path it was read from is for information.
-    """
-    version = entry.get("version")
-    probe_entry = entry.get("probe") if isinstance(entry.get("probe"), dict) else {}
-    recorded = probe_entry.get("path")  # seals made before probes were kept in the workspace
-    kept = probe_entry.get("file")
-    if override is not None:
-        path = Path(override)
-    elif kept:
-        if kept not in net.kept_files:
-            return None, (f"the probe of seal v{version} ({kept}) is not among the "
-                          f"workspace's files; restore the workspace, or pass --task {task} "
-                          f"--probe FILE")
-        path = folder / str(kept)
-    elif recorded:
-        path = Path(recorded if os.path.isabs(recorded)
-                    else os.path.normpath(folder / recorded))
-    else:
-        return None, f"seal v{version} of task {task!r} names no probe file; pass --probe FILE"
-    labels = (entry.get("probe") or {}).get("labels") if override is None else None
-    if labels is not None:
-        labels = Path(labels if os.path.isabs(labels) else os.path.normpath(folder / labels))
+
+def _kept(net: ProgressiveNet, task: str, version: Any, probe_entry: Mapping[str, Any],
+          name: str, data: bytes | None) -> tuple[Probe | None, str | None]:
+    """The probe from ``data``, the bytes of the kept file ``name`` (None: not there)."""
+    if data is None:
+        return None, (f"the probe of seal v{version} ({name}) is not among the workspace's "
+                      f"files; restore the workspace, or pass --task {task} --probe FILE")
+    packed = "file_sha256" in probe_entry
+    # Older seals kept a single-file probe byte for byte: its digest is the probe's own.
+    want = probe_entry.get("file_sha256") if packed else probe_entry.get("sha256")
+    if bytes_digest(data) != want:
+        return None, (f"the probe kept as {name} changed since seal v{version}: its SHA-256 "
+                      f"differs from the recorded one")
+    info = net.task(task)
+    try:
+        if packed:
+            x, y = unpack_probe(data, net.input_shape, info.classes, name)
+        else:
+            loaded = load_for_spec(name, net.spec, classes=info.classes,
+                                   class_names=info.class_names, need_labels=True,
+                                   split=False, content=data)
+            x, y = loaded.x, loaded.y
+    except ColonnadeError as exc:
+        return None, f"the probe kept as {name} for seal v{version} cannot be used ({exc})"
+    return Probe(x, y, str(probe_entry.get("sha256")), f"{name} (kept in the workspace)"), None
+
+
+def _given(net: ProgressiveNet, task: str, version: Any, probe_entry: Mapping[str, Any],
+           path: Path, labels: Path | None) -> tuple[Probe | None, str | None]:
+    """A probe file the user named: its source digest, or the kept copy's own, must match."""
     if not path.exists() or (labels is not None and not labels.is_file()):
-        return None, (f"probe file {path} of seal v{version} is missing; restore it, or pass "
-                      f"--task {task} --probe FILE")
-    if source_digest(path, labels) != entry["probe"].get("sha256"):
-        return None, (f"probe file {path} changed since seal v{version}: its SHA-256 differs "
-                      f"from the recorded one")
+        missing = path if not path.exists() else labels
+        return None, f"{missing}: no such probe file or folder"
+    if labels is None and path.is_file() and probe_entry.get("file_sha256") is not None \
+            and file_digest(path) == probe_entry.get("file_sha256"):
+        # the kept copy itself, taken out of a workspace
+        probe, problem = _kept(net, task, version, probe_entry, str(probe_entry.get("file")),
+                               path.read_bytes())
+        if probe is not None:
+            probe.path = str(path)
+        return probe, problem
+    if source_digest(path, labels) != probe_entry.get("sha256"):
+        return None, (f"probe file {path} is not the probe of seal v{version}: its SHA-256 "
+                      f"differs from the recorded one")
     try:
         probe = load_probe(path, net, task, labels=labels)
     except ColonnadeError as exc:
         return None, f"probe file {path} of seal v{version} cannot be used ({exc})"
     probe.path = str(path)
     return probe, None
+
+
+def probe_for(net: ProgressiveNet, task: str, entry: Mapping[str, Any],
+              override: str | Path | None = None, labels: str | Path | None = None,
+              ) -> tuple[Probe | None, str | None]:
+    """The seal's probe, or one sentence saying why there is none.
+
+    A seal's probe is read only from its copy kept in the workspace (the bytes the store
+    loaded, ``net.kept_files``), or from ``override``, a file the user names (with
+    ``labels`` for a .npy). A path written in the manifest (an older seal's ``probe.path``
+    or ``labels``, a newer one's ``source``) is never opened, hashed or even tested for
+    existence: a workspace may come from anyone, and such a path could name a device,
+    ``/proc``, or a file whose existence is nobody's business.
+    """
+    version = entry.get("version")
+    probe_entry = entry.get("probe") if isinstance(entry.get("probe"), Mapping) else {}
+    if override is not None:
+        return _given(net, task, version, probe_entry, Path(override),
+                      None if labels is None else Path(labels))
+    kept = probe_entry.get("file")
+    if not isinstance(kept, str) or not kept:
+        return None, _not_kept(task, version, probe_entry)
+    return _kept(net, task, version, probe_entry, kept, net.kept_files.get(kept))

@@ -199,7 +199,8 @@ def load_task_data(path: str | Path, input_shape: tuple[int, ...], classes: int 
                    seed: int = 0, need_labels: bool = True, split: bool = True,
                    class_names: Sequence[str] | None = None, labels: str | Path | None = None,
                    skip_bad: bool = False, rate: int | None = None,
-                   budget_bytes: int = DEFAULT_BUDGET_BYTES) -> TaskData:
+                   budget_bytes: int = DEFAULT_BUDGET_BYTES, content: bytes | None = None,
+                   ) -> TaskData:
     """Load and check one task's data; validation from the file, ``val_path`` or a split.
 
     ``path`` is an .npz, a .csv (feature rows, or an index of files), a .npy of samples
@@ -209,7 +210,8 @@ def load_task_data(path: str | Path, input_shape: tuple[int, ...], classes: int 
     order: labels by name are mapped onto them (a name the task lacks is refused).
     ``split=False`` keeps every sample, in file order, as ``x``/``y`` (prediction, probes).
     ``rate`` is the spec's waveform sample rate, ``budget_bytes`` how much decoded folder
-    data may stay in memory.
+    data may stay in memory. ``content``: the bytes of an .npz or CSV already in memory,
+    which ``path`` only names (nothing is opened).
     """
     if classes is not None:
         check_class_count(classes, str(path))
@@ -218,7 +220,7 @@ def load_task_data(path: str | Path, input_shape: tuple[int, ...], classes: int 
                         f"one name per class")
     shape = tuple(input_shape)
     src = open_source(path, shape, labels=labels, need_labels=need_labels, skip_bad=skip_bad,
-                      rate=rate, budget_bytes=budget_bytes)
+                      rate=rate, budget_bytes=budget_bytes, content=content)
     notes = list(src.notes)
     x = _features(src.path, "x", src.x, shape, src.flat_rows, notes)
     n = int(x.shape[0])

@@ -30,7 +30,7 @@ from torch.utils.data import DistributedSampler
 from ..errors import ColonnadeError
 
 __all__ = ["DistributedHooks", "TrainablePath", "WorkerFailed", "launched_by_torchrun",
-           "free_port", "shard_rows", "fault_hook", "FAULT_ENV"]
+           "torchrun_rank", "free_port", "shard_rows", "fault_hook", "FAULT_ENV"]
 
 # For tests only: "RANK:EPOCH" makes that rank kill itself (SIGKILL) as that epoch starts,
 # so the failure path is exercised with a real dead process.
@@ -64,6 +64,11 @@ class TrainablePath(nn.Module):
 def launched_by_torchrun() -> bool:
     """True inside a process that torchrun (or another launcher) started as one rank."""
     return "TORCHELASTIC_RUN_ID" in os.environ and int(os.environ.get("WORLD_SIZE", "1")) > 1
+
+
+def torchrun_rank() -> int:
+    """This process's rank in a torchrun launch (0 outside one)."""
+    return int(os.environ.get("RANK", "0"))
 
 
 def free_port() -> int:

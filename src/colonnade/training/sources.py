@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import csv
 import hashlib
+import io
 import os
 import zipfile
 from dataclasses import dataclass, field
@@ -49,9 +50,10 @@ class Source:
 
 
 # --------------------------------------------------------------------- .npz and .csv
-def _read_npz(path: Path) -> dict[str, np.ndarray]:
+def _read_npz(path: Path, content: bytes | None = None) -> dict[str, np.ndarray]:
     try:
-        with np.load(path, allow_pickle=False) as f:
+        with np.load(path if content is None else io.BytesIO(content),
+                     allow_pickle=False) as f:
             return {k: f[k] for k in f.files}
     except (ValueError, OSError, zipfile.BadZipFile, EOFError) as exc:
         raise DataError(f"{path}: cannot read as .npz ({exc.__class__.__name__}); write it "
@@ -65,10 +67,14 @@ def _number(text: str) -> float | None:
         return None
 
 
-def _read_csv_rows(path: Path) -> list[list[str]]:
+def _read_csv_rows(path: Path, content: bytes | None = None) -> list[list[str]]:
     try:
-        with open(path, newline="", encoding="utf-8") as f:
-            rows = [r for r in csv.reader(f) if r]
+        if content is not None:
+            rows = [r for r in csv.reader(io.StringIO(content.decode("utf-8"), newline=""))
+                    if r]
+        else:
+            with open(path, newline="", encoding="utf-8") as f:
+                rows = [r for r in csv.reader(f) if r]
     except (OSError, UnicodeDecodeError, csv.Error) as exc:
         raise DataError(f"{path}: cannot read as CSV ({exc.__class__.__name__})") from None
     if not rows:
@@ -76,8 +82,8 @@ def _read_csv_rows(path: Path) -> list[list[str]]:
     return rows
 
 
-def _read_csv(path: Path, need_labels: bool) -> Source:
-    rows = _read_csv_rows(path)
+def _read_csv(path: Path, need_labels: bool, content: bytes | None = None) -> Source:
+    rows = _read_csv_rows(path, content)
     header = [h.strip() for h in rows[0]]
     if "file" in header:
         raise _IsIndex
@@ -347,16 +353,39 @@ def _read_files(origin: Path, entries: tuple[list[Path], list[str] | None, list[
 
 
 # --------------------------------------------------------------------- entry point
+def _from_content(path: Path, content: bytes, need_labels: bool) -> Source:
+    """An .npz or a CSV of feature rows from bytes already in memory (``path``: its name)."""
+    suffix = path.suffix.lower()
+    if suffix == ".npz":
+        arrays = _read_npz(path, content)
+        if "x" not in arrays:
+            raise DataError(f"{path}: no array named 'x' (found: {', '.join(arrays) or 'none'})")
+        return Source(arrays["x"], arrays.get("y"), str(path), label_name="y")
+    if suffix == ".csv":
+        try:
+            return _read_csv(path, need_labels, content)
+        except _IsIndex:
+            raise DataError(f"{path}: an index of files cannot be read from memory; its files "
+                            f"are not in it") from None
+    raise DataError(f"{path}: only .npz and .csv data can be read from memory")
+
+
 def open_source(path: str | Path, shape: tuple[int, ...], labels: str | Path | None = None,
                 need_labels: bool = True, skip_bad: bool = False, rate: int | None = None,
-                budget_bytes: int = 1 << 30) -> Source:
-    """Read the samples and raw labels at ``path``; ``labels`` is a ``.npy`` of labels."""
+                budget_bytes: int = 1 << 30, content: bytes | None = None) -> Source:
+    """Read the samples and raw labels at ``path``; ``labels`` is a ``.npy`` of labels.
+
+    With ``content``, nothing is opened: the bytes are an .npz or a CSV of feature rows and
+    ``path`` only names them (its suffix says which, messages quote it).
+    """
     path = Path(path)
-    if not path.exists():
+    if content is not None:
+        src = _from_content(path, content, need_labels)
+    elif not path.exists():
         raise DataError(f"{path}: no such data file or folder")
-    if skip_bad and not (path.is_dir() or path.suffix.lower() == ".csv"):
+    elif skip_bad and not (path.is_dir() or path.suffix.lower() == ".csv"):
         raise DataError(f"{path}: --skip-bad applies to class folders and index files only")
-    if path.is_dir():
+    elif path.is_dir():
         src = _read_files(path, _folder_entries(path, need_labels), shape, skip_bad, rate,
                           budget_bytes)
     else:

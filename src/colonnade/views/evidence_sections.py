@@ -15,6 +15,7 @@ from collections.abc import Mapping
 from typing import Any
 
 from ..costing.hardware import format_bytes
+from ..evidence.kept_probe import short_name
 from ..evidence.seal import environment
 from ..model.guard import sealed_tasks, seals_of
 from ..model.network import ProgressiveNet
@@ -195,6 +196,19 @@ def _class_names(net: ProgressiveNet, task: str, n: int) -> list[str]:
     return [str(c) for c in names] if names and len(names) == n else [str(c) for c in range(n)]
 
 
+# A kept probe's workspace name: ``probe-`` and 64 hex digits, then its extension.
+_KEPT = re.compile(r"probe-[0-9a-f]{64}\.[A-Za-z0-9]+")
+
+
+def _probe_note(probe: Mapping[str, Any]) -> list[str]:
+    """The kept probe's full name and digests, below the table that shortens them."""
+    if not probe.get("file"):
+        return []
+    source = f" from {probe['source']}" if probe.get("source") else ""
+    return [f"Probe kept in the workspace as {probe['file']}; read{source}, whose SHA-256 "
+            f"is {probe.get('sha256')}."]
+
+
 def seal_sections(net: ProgressiveNet, check: Mapping[str, Any] | None,
                   ) -> tuple[list[Section], dict[str, bytes]]:
     """A section per sealed task (facts, per-class recall, confusion heat map)."""
@@ -229,9 +243,10 @@ def seal_sections(net: ProgressiveNet, check: Mapping[str, Any] | None,
                              f"{len(closure.get('adapters') or [])} adapters, head "
                              f"{closure.get('head')}, {len(closure.get('tensors') or {})} "
                              f"tensors"],
-                 ["probe", f"{probe.get('samples')} samples, "
+                 ["probe", f"{probe.get('samples')} samples, source SHA-256 "
                            f"{short_digest(probe.get('sha256'))}"],
-                 ["probe file", str(probe.get("file") or probe.get("path"))],
+                 ["probe kept as", short_name(str(probe["file"])) if probe.get("file")
+                  else "not kept (an older seal; check with --probe FILE)"],
                  ["accuracy on probe", f"{metrics.get('accuracy'):.4f}"
                   if isinstance(metrics.get("accuracy"), float) else "-"],
                  ["computed with", f"batch {comp.get('batch_size')}, {comp.get('threads')} "
@@ -239,7 +254,7 @@ def seal_sections(net: ProgressiveNet, check: Mapping[str, Any] | None,
                  ["environment", f"torch {(entry.get('environment') or {}).get('torch')}, "
                                  f"{(entry.get('environment') or {}).get('machine')}"]]
         for f in (v or {}).get("failures", []):
-            facts.append(["finding", f])
+            facts.append(["finding", _KEPT.sub(lambda m: short_name(m.group(0)), f)])
         confusion = metrics.get("confusion") or []
         names = _class_names(net, task, len(confusion))
         recall = metrics.get("recall") or []
@@ -255,7 +270,8 @@ def seal_sections(net: ProgressiveNet, check: Mapping[str, Any] | None,
             figs.append(Figure(name, f"confusion matrix of {task}", small=True))
         sections.append(Section(f"Seal of {task}", tables=[Table(facts, key_value=True),
                                                            Table(rrows)],
-                                figures=figs, level=3, anchor=f"seal-{task}"))
+                                figures=figs, level=3, anchor=f"seal-{task}",
+                                after=_probe_note(probe)))
     return sections, figures
 
 
