@@ -68,6 +68,7 @@ _PUBLIC: dict[str, tuple[str, str | None]] = {
     "verify_record": ("colonnade.app.record", "verify_record"),
     "history": ("colonnade.app.record", "history"),
     "new_key": ("colonnade.app.record", "new_key"),
+    "start_record": ("colonnade.app.record", "start_record"),
     "match_data_file": ("colonnade.app.record", "match_data_file"),
     "record": ("colonnade.evidence.record", None),
 }

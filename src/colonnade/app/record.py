@@ -3,7 +3,8 @@
 ``verify_record`` reads what a workspace holds and hands it to ``evidence.integrity``;
 ``history`` returns the chain as typed entries; ``new_key`` writes an Ed25519 key pair;
 ``match_data_file`` says whether a file is the data a task was trained on. None of them
-writes into a workspace.
+writes into a workspace, except ``start_record``, which chains the history of a workspace
+made before the record existed.
 """
 
 from __future__ import annotations
@@ -13,18 +14,20 @@ from collections.abc import Iterable
 from pathlib import Path
 from typing import Any
 
+from ..clock import now
 from ..errors import DataError, UsageError, WorkspaceError
 from ..evidence.integrity import RecordReport, verify_manifest
 from ..evidence.provenance import match_data, sample_fingerprint
-from ..evidence.record import Finding, RecordEntry, typed_history, verify_chain
+from ..evidence.record import Finding, RecordEntry, chain_found, typed_history, verify_chain
 from ..evidence.signing import key_id, load_signer, load_trusted, new_key_pems
 from ..files.manifest import MANIFEST, manifest_text, read_manifest
+from ..files.store import save
 from ..model.digest import file_digest
 from ..training.data import load_for_spec
 from ..training.sources import source_digest
-from .transaction import read_workspace
+from .transaction import attribution, read_workspace
 
-__all__ = ["verify_record", "history", "new_key", "match_data_file"]
+__all__ = ["verify_record", "history", "new_key", "match_data_file", "start_record"]
 
 
 def _digest_reader(folder: Path):
@@ -59,6 +62,38 @@ def verify_record(folder: str | Path, trust: Iterable[str | Path] | None = None,
                             trusted=[k.key_id for k in trusted])
     return verify_manifest(manifest, path.read_bytes(), manifest_text(manifest),
                            _digest_reader(folder), trusted, str(folder), MANIFEST)
+
+
+def start_record(folder: str | Path, reason: str, by: str | None = None,
+                 sign: str | Path | None = None) -> dict[str, Any]:
+    """``colonnade record start WS --reason TEXT``: chain a workspace made before the record.
+
+    Such a workspace (its manifest has no ``record`` section and its history entries no
+    digests) is refused by every other verb. This chains its history as found and adds a
+    ``record_started`` entry saying that the earlier entries were not chained when
+    written, attributed to ``by`` and signed with ``sign`` like any writing verb. Every
+    file must still match the SHA-256 its manifest records: a record is never started
+    over files changed outside colonnade. Returns the new entry.
+    """
+    who = attribution("record start", by, reason, sign)  # a wrong key stops here
+    if who.reason is None:
+        raise UsageError("starting the record needs --reason TEXT saying why the earlier "
+                         "history is taken as it is")
+    folder = Path(folder)
+    manifest = read_manifest(folder)
+    if "record" in manifest:
+        raise UsageError(f"{folder} has a chained record already, so there is nothing to "
+                         f"start; run 'colonnade check {folder}' to verify it")
+    net = read_workspace(folder, strict=False)
+    changed = net.meta.pop("_mismatched", [])
+    if changed:
+        raise WorkspaceError(f"{folder}: file {changed[0]} does not match the SHA-256 its "
+                             f"manifest records, so it was changed outside colonnade and a "
+                             f"record is not started over it; restore it from a backup")
+    entry = chain_found(net.meta.get("history"), now())
+    net.meta["history"].append(entry)
+    save(net, folder, who)
+    return entry
 
 
 def history(folder: str | Path, verify: bool = True) -> list[RecordEntry]:

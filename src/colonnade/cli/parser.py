@@ -14,6 +14,7 @@ from .evidence_cmds import add_parsers as add_evidence_verbs
 from .export_cmds import add_parsers as add_export_verbs
 from .key_cmds import add_parsers as add_key_verbs
 from .lifecycle_cmds import add_parsers as add_lifecycle_verbs
+from .record_cmds import add_parsers as add_record_verbs
 from .trim_cmds import add_parsers as add_trim_verbs
 from .workspace_cmds import add_parsers as add_workspace_verbs
 
@@ -22,7 +23,7 @@ __all__ = ["build_parser", "Parser", "short_usage"]
 # The verb groups, in the order of ``colonnade --help``.
 GROUPS = (add_workspace_verbs, add_adopt_verbs, add_evidence_verbs, add_export_verbs,
           add_cost_verbs, add_trim_verbs, add_diff_verbs, add_lifecycle_verbs,
-          add_key_verbs)
+          add_key_verbs, add_record_verbs)
 
 
 class Parser(argparse.ArgumentParser):

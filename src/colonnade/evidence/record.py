@@ -37,9 +37,10 @@ from ..errors import WorkspaceError
 __all__ = ["RECORD_FORMAT", "Attribution", "Finding", "RecordEntry", "canonical",
            "value_digest", "entry_digest", "state_digests", "extend", "verify_chain",
            "describe_entry", "typed_history", "default_author", "signature_required_from",
-           "unchain"]
+           "unchain", "chain_found", "RECORD_STARTED"]
 
 RECORD_FORMAT = "colonnade-record-1"
+RECORD_STARTED = "record_started"  # the step that chains a history written before the record
 # Manifest sections that the state digest leaves out: the chain and the chain's own summary.
 UNBOUND = ("history", "record")
 # Fields an entry's own digest leaves out: the digest itself and the signature over it.
@@ -259,6 +260,39 @@ def extend(manifest: dict[str, Any], who: Attribution) -> list[dict[str, Any]]:
     return pending
 
 
+def chain_found(history: list[Any], when: str) -> dict[str, Any]:
+    """Chain a history written before the record existed, as it was found, and return
+    the entry that says so (the caller appends it; the next commit chains and signs it).
+
+    The found entries get their links (``seq``, ``prev_sha256``, ``entry_sha256``) and
+    nothing else: no author, verb or state is invented for them. The returned
+    ``record_started`` entry names how many there were, so that nobody reads the chain
+    as proof of who wrote them or that they were never edited before this point.
+    """
+    if not isinstance(history, list):
+        raise WorkspaceError("the workspace's history is not a list, so it cannot be chained; "
+                             "restore the manifest from a backup")
+    prev = None
+    for index, entry in enumerate(history, start=1):
+        if not isinstance(entry, dict):
+            raise WorkspaceError(f"{describe_entry(entry, index)} is not a mapping, so the "
+                                 f"history cannot be chained; restore the manifest from a "
+                                 f"backup")
+        if "entry_sha256" in entry or "signature" in entry:
+            raise WorkspaceError(f"{describe_entry(entry, index)} is chained already, so the "
+                                 f"record was started before; run 'colonnade check' on it")
+        entry["seq"] = index
+        entry["prev_sha256"] = prev
+        entry["entry_sha256"] = prev = entry_digest(entry)
+    n = len(history)
+    span = "no entry" if n == 0 else ("entry 1" if n == 1 else f"entries 1 to {n}")
+    return {"step": RECORD_STARTED, "time": when, "unchained_entries": n,
+            "note": f"{span} of this history were written before colonnade chained its "
+                    f"record; they are chained here as they were found, so the record "
+                    f"vouches for them only from this entry on, and says nothing of who "
+                    f"wrote them or whether they were edited before"}
+
+
 def unchain(entries: list[dict[str, Any]]) -> None:
     """Take the chain fields off entries, so the next commit chains them anew (used when
     a result made in a staging copy is committed into the workspace)."""
@@ -306,8 +340,13 @@ def verify_chain(manifest: Mapping[str, Any]) -> list[Finding]:
     if not isinstance(history, list) or not history:
         return [Finding("the manifest has no history, so nothing binds its content; restore "
                         "the workspace from a copy", section="history")]
-    out = _chain_findings(history)
     record = manifest.get("record")
+    if record is None and not any(isinstance(e, Mapping) and "entry_sha256" in e
+                                  for e in history):
+        return [Finding("the workspace was made before colonnade chained its record (no "
+                        "history entry carries a digest); start its record with 'colonnade "
+                        "record start WS --reason TEXT'", section="record")]
+    out = _chain_findings(history)
     if (not isinstance(record, Mapping) or not isinstance(record.get("state"), Mapping)
             or set(record) != {"format", "length", "head", "state"}
             or record.get("format") != RECORD_FORMAT):

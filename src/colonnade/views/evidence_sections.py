@@ -89,6 +89,9 @@ def step_text(e: Mapping[str, Any]) -> str:
         return f"seal v{e.get('version')}, closure {short_digest(e.get('closure_sha256'))}"
     if step == "task_unsealed":
         return f"seal v{e.get('version')} lifted"
+    if step == "record_started":
+        n = e.get("unchained_entries")
+        return f"record started; the {n} entries before it were chained as found"
     return ""
 
 
