@@ -16,6 +16,7 @@ from conftest import DIGITS_SPEC, permuted_digit_tasks, snapshot, write_npz
 from cryptography.hazmat.primitives import serialization
 
 from colonnade.app.evidence import check_workspace, seal_workspace
+from colonnade.app.export import export_task
 from colonnade.app.record import history, new_key, start_record, verify_record
 from colonnade.app.workspace import grow_workspace, new_workspace
 from colonnade.cli import main
@@ -122,6 +123,9 @@ def test_after_the_start_the_workspace_works_and_the_old_seal_asks_for_its_probe
     assert "keeps no copy of its probe" in task.failures[0]
     given = check_workspace(ws, task="perm0", probe=made["paths"]["perm0"][1])
     assert [t.verdict for t in given.tasks] == ["exact"] and given.passed
+    # export measures an old seal's task on its validation data, as for an unsealed one
+    exported = export_task(ws, "perm0", tmp_path / "perm0.pt")
+    assert exported["report"]["perm0"]["probe"]["source"] == "validation"
     seal_workspace(ws, "perm1", made["paths"]["perm1"][1])  # any verb works again
     assert {t.task: t.verdict for t in check_workspace(ws).tasks} == {
         "perm0": "unverified", "perm1": "exact"}

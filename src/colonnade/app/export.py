@@ -140,9 +140,11 @@ def _calibration(net: ProgressiveNet, names: list[str], path: str | Path | None,
 
 def _probe(folder: Path, net: ProgressiveNet, task: str,
            ) -> tuple[torch.Tensor, torch.Tensor | None, dict[str, Any]] | None:
-    """The rows a task's agreement is measured on: its seal's probe, else its validation."""
+    """The rows a task's agreement is measured on: its seal's probe (when the seal kept
+    one in the workspace), else its validation."""
     entry = sealed_tasks(net).get(task)
-    if entry is not None:
+    recorded = entry.get("probe") if entry is not None else None
+    if isinstance(recorded, dict) and recorded.get("file"):
         probe, problem = probe_for(net, task, entry)
         if probe is None:
             raise WorkspaceError(f"cannot measure sealed task {task!r}: {problem}")
