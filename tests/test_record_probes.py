@@ -157,6 +157,8 @@ def test_the_kept_file_is_the_same_bytes_for_the_same_samples():
 def test_a_copied_and_a_tarred_workspace_check_exact_without_the_data(made, tmp_path, capsys):
     assert not made["data"].exists()  # every file the seals were made from is gone
     _exact(check_workspace(_copy(made, tmp_path)))
+    net = store.load(made["ws"])
+    assert {guard.latest_seal(net, t)["probe"]["file"] for t in "ab"} <= set(net.kept_files)
     archive = tmp_path / "ws.tar"
     with tarfile.open(archive, "w") as tar:
         tar.add(made["ws"], arcname="ws")
@@ -307,13 +309,16 @@ def test_short_names_keep_the_digest_prefix():
 
 
 def test_a_probe_too_large_to_keep_is_pinned_and_checked_with_the_file(made, tmp_path,
-                                                                       monkeypatch):
+                                                                       monkeypatch, capsys):
     """The store holds every workspace file in memory, so a probe beyond the limit is not
     kept (a probe larger than memory is still sealed, read in batches)."""
     ws = _copy(made, tmp_path)
     monkeypatch.setattr("colonnade.evidence.kept_probe.KEEP_LIMIT_BYTES", 1000)
     before = set(store.load(ws).kept_files)
-    entry = seal_workspace(ws, "a", made["aside"] / "probe_folder", reason="sealed again")
+    assert main(["seal", str(ws), "--task", "a", "--probe",
+                 str(made["aside"] / "probe_folder"), "--reason", "sealed again"]) == 0
+    assert "the probe is not kept in the workspace (its 160 samples" in capsys.readouterr().out
+    entry = guard.latest_seal(store.load(ws), "a")
     assert "file" not in entry["probe"] and set(store.load(ws).kept_files) == before
     # 160 samples of 1 x 8 x 8 float32 (numel x 4 bytes): 40,960 bytes, shown in MiB
     assert entry["probe"]["not_kept"].startswith("its 160 samples take 0 MiB decoded")

@@ -28,6 +28,12 @@ def _seal(args: argparse.Namespace) -> int:
     print(f"sealed task {entry['task']!r} as seal v{entry['version']}: closure SHA-256 "
           f"{c['sha256'][:16]}... over {len(c['tensors'])} tensors, probe accuracy "
           f"{m['accuracy']:.4f} on {entry['probe']['samples']} samples")
+    probe = entry["probe"]
+    if probe.get("file"):
+        print(f"the probe's samples are kept in the workspace as {probe['file']}")
+    else:
+        print(f"the probe is not kept in the workspace ({probe.get('not_kept')}); check this "
+              f"seal with --task {entry['task']} --probe FILE")
     return 0
 
 
