@@ -11,7 +11,6 @@ app, cli, each importing only from the layers below it.
 from __future__ import annotations
 
 import importlib
-from typing import Any
 
 from ._version import __version__
 from .errors import (
@@ -77,8 +76,11 @@ __all__ = ["__version__", "ColonnadeError", "SpecError", "DataError", "Workspace
            "SealedError", "UsageError", *_PUBLIC]
 
 
-def __getattr__(name: str) -> Any:
-    """Import a public name's module on first use and cache the name here."""
+def __getattr__(name: str) -> object:
+    """Import a public name's module on first use and cache the name here.
+
+    (Annotated ``object``, not ``typing.Any``: importing ``typing`` here would lengthen
+    the start-up moment before ``colonnade._startup`` can answer Ctrl-C.)"""
     try:
         module_name, attribute = _PUBLIC[name]
     except KeyError:

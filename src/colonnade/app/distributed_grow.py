@@ -6,13 +6,24 @@ locally (``grow --nproc N``), rank 0 writes the trained network to a staging fol
 the parent process commits it to the workspace only after every worker has exited
 cleanly, so a failed or killed worker leaves the workspace exactly as before. Launched by
 ``torchrun`` across machines, rank 0 commits after a final barrier.
+
+What a killed parent leaves: the staging folder is a dot-folder inside the workspace
+(``.colonnade-ddp-<pid>-<random>``, never read as part of it), so nothing is written
+beside the workspace; the next ``grow --nproc`` removes every such folder whose parent
+process is gone. The workers ask the kernel to kill them when their parent dies
+(Linux's ``prctl(PR_SET_PDEATHSIG)``), so none is left running on its own.
 """
 
 from __future__ import annotations
 
+import ctypes
+import ctypes.util
 import datetime
 import logging
 import os
+import shutil
+import signal
+import sys
 import tempfile
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -40,7 +51,11 @@ from ..training.distributed import (
 from ..training.growth import grow
 
 __all__ = ["DataOptions", "growth_data", "GrowRequest", "grow_distributed", "run_rank",
-           "run_torchrun_rank"]
+           "run_torchrun_rank", "STAGING_PREFIX", "remove_stale_staging"]
+
+# The staging folder's name inside the workspace: STAGING_PREFIX, the parent's pid, "-",
+# random letters. The workspace store knows the name and never reads the folder.
+STAGING_PREFIX = ".colonnade-ddp-"
 
 
 @dataclass
@@ -142,8 +157,58 @@ def run_torchrun_rank(request: GrowRequest, progress: bool = True,
     return run_rank(rank, world, request, None, progress, who if rank == 0 else None)
 
 
+# prctl's option number for "send me this signal when my parent dies", from the Linux
+# headers (<linux/prctl.h>: PR_SET_PDEATHSIG = 1) and the prctl(2) manual page.
+_PR_SET_PDEATHSIG = 1
+
+
+def _die_with_parent(parent: int) -> None:
+    """Have the kernel kill this worker when the process that spawned it dies (Linux).
+
+    prctl(2) says the signal is sent when the parent thread exits; the parent's pid is
+    checked afterwards because the parent may have died before the call. Elsewhere there
+    is no such call and nothing is done: a worker whose parent died then fails at its
+    next collective (the process group's timeout) instead.
+    """
+    if not sys.platform.startswith("linux"):
+        return
+    libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6", use_errno=True)
+    if libc.prctl(_PR_SET_PDEATHSIG, signal.SIGKILL, 0, 0, 0) != 0:
+        return  # not allowed here (a sandbox): the collectives' timeout still applies
+    if os.getppid() != parent:
+        os._exit(1)
+
+
+def _alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True  # another user's process
+    return True
+
+
+def remove_stale_staging(folder: str | Path) -> list[str]:
+    """Remove the staging folders of ``grow --nproc`` runs whose parent process is gone.
+
+    The pid in a folder's name is the parent's; a folder of a live process is kept (it may
+    be a run in progress). Returns the names removed.
+    """
+    removed = []
+    for path in Path(folder).glob(STAGING_PREFIX + "*"):
+        pid = path.name[len(STAGING_PREFIX):].split("-", 1)[0]
+        if not path.is_dir() or path.is_symlink() or not pid.isdigit():
+            continue
+        if int(pid) != os.getpid() and not _alive(int(pid)):
+            shutil.rmtree(path, ignore_errors=True)
+            removed.append(path.name)
+    return removed
+
+
 def _spawned(rank: int, world: int, port: int, request: GrowRequest, staging: str,
-             progress: bool) -> None:
+             progress: bool, parent: int) -> None:
+    _die_with_parent(parent)
     os.environ.update(MASTER_ADDR="127.0.0.1", MASTER_PORT=str(port))
     torch.set_num_threads(max(1, (os.cpu_count() or 1) // world))
     run_rank(rank, world, request, staging, progress)
@@ -159,17 +224,19 @@ def grow_distributed(request: GrowRequest, nproc: int, progress: bool = True,
         raise UsageError(f"--nproc {nproc} with --device cuda needs {nproc} GPUs, this "
                          f"machine has {torch.cuda.device_count()}")
     before = load(request.folder)  # validates the workspace and names before any spawn
+    remove_stale_staging(request.folder)  # left by a run whose parent was killed
     if request.task in before.task_info:
         raise UsageError(f"a task named {request.task!r} exists already in {request.folder}; "
                          f"choose another name")
     # torch logs a warning line when it terminates the surviving ranks; our one sentence
     # below says what happened instead.
     logging.getLogger("torch.multiprocessing.spawn").setLevel(logging.ERROR)
-    parent = Path(request.folder).resolve().parent
-    with tempfile.TemporaryDirectory(prefix=".colonnade-ddp-", dir=parent) as tmp:
+    tmp = tempfile.mkdtemp(prefix=f"{STAGING_PREFIX}{os.getpid()}-", dir=request.folder)
+    try:
         staging = str(Path(tmp) / "result")
         try:
-            mp.start_processes(_spawned, args=(nproc, free_port(), request, staging, progress),
+            mp.start_processes(_spawned, args=(nproc, free_port(), request, staging, progress,
+                                               os.getpid()),
                                nprocs=nproc, join=True, start_method="spawn")
         except mp.ProcessRaisedException as exc:
             last = [line for line in str(exc).strip().splitlines() if line.strip()][-1]
@@ -185,4 +252,6 @@ def grow_distributed(request: GrowRequest, nproc: int, progress: bool = True,
         added = net.meta["history"][len(before.meta["history"]):]
         unchain(added)
         save(net, request.folder, who)
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
     return next(e for e in reversed(added) if e.get("task") == request.task)

@@ -16,9 +16,14 @@ from pathlib import Path
 
 from ..errors import WorkspaceError
 
-__all__ = ["confined", "sha256_file", "CHUNK"]
+__all__ = ["confined", "sha256_file", "read_bounded", "CHUNK", "MAX_MANIFEST_BYTES"]
 
 CHUNK = 1 << 20  # hashing reads 1 MiB at a time, whatever the file's size
+# The largest manifest colonnade reads. A manifest holds the spec, the network's layout,
+# the history and the seals' digests: a few KiB per task, so a workspace of thousands of
+# tasks stays far below this, while a file of this size still parses in seconds. Our own
+# bound (the manifests colonnade writes measured a few KiB to a few hundred KiB).
+MAX_MANIFEST_BYTES = 32 << 20
 
 
 def confined(folder: Path, relative: str) -> Path:
@@ -60,3 +65,31 @@ def sha256_file(path: Path, limit: int | None = None) -> tuple[str, int]:
             digest.update(chunk)
             size += len(chunk)
     return digest.hexdigest(), size
+
+
+def read_bounded(path: Path, limit: int, what: str) -> bytes:
+    """A regular file's bytes, refused in one sentence when it holds more than ``limit``.
+
+    The size is looked up before anything is read, and at most ``limit + 1`` bytes are
+    read even if the file grows meanwhile, so a huge (or sparse, or endless) file costs
+    no memory. ``what`` names the kind of file in the sentence.
+    """
+    try:
+        info = os.stat(path)
+    except OSError as exc:
+        raise WorkspaceError(f"{path}: cannot be read ({exc.strerror or exc})") from None
+    if not stat.S_ISREG(info.st_mode):
+        raise WorkspaceError(f"{path}: not a regular file, so it cannot be {what}")
+    if info.st_size > limit:
+        raise WorkspaceError(f"{path}: {info.st_size:,} bytes, more than the {limit:,} bytes "
+                             f"{what} may hold; it was not written by colonnade, restore it "
+                             f"from a copy you trust")
+    try:
+        with open(path, "rb") as handle:
+            data = handle.read(limit + 1)
+    except OSError as exc:
+        raise WorkspaceError(f"{path}: cannot be read ({exc.strerror or exc})") from None
+    if len(data) > limit:
+        raise WorkspaceError(f"{path}: grew past the {limit:,} bytes {what} may hold while "
+                             f"it was read; stop whatever writes it and try again")
+    return data

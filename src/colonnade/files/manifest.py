@@ -3,7 +3,11 @@ only the record.
 
 The manifest (``manifest.yaml``) names every file of the workspace with its SHA-256 and
 holds the spec, the network's architecture, the history, seals, records and a summary of
-the network's sizes written at every save. It is read with YAML's safe loader only.
+the network's sizes written at every save. A workspace may come from anyone, so the
+manifest is refused unread when it is larger than ``MAX_MANIFEST_BYTES``, and parsed by
+the safe loader with every YAML anchor and alias refused: colonnade never writes them, and
+an alias bomb (a few lines standing for billions of values) is stopped before anything
+expands it.
 Loading tensors is ``files.store``'s job; this module never imports torch, so that
 read-only verbs start fast.
 """
@@ -16,9 +20,11 @@ from typing import Any
 import yaml
 
 from ..errors import WorkspaceError
+from ..model.yamlfile import load_yaml
+from .limits import MAX_MANIFEST_BYTES, read_bounded
 
-__all__ = ["MANIFEST", "WEIGHTS", "FORMAT", "VERSION", "RESERVED", "read_manifest",
-           "manifest_text"]
+__all__ = ["MANIFEST", "WEIGHTS", "FORMAT", "VERSION", "RESERVED", "MAX_MANIFEST_BYTES",
+           "read_manifest", "manifest_text"]
 
 MANIFEST = "manifest.yaml"
 WEIGHTS = "weights.safetensors"
@@ -30,16 +36,28 @@ RESERVED = ("format", "version", "colonnade", "saved", "spec", "network", "summa
             "record")
 
 
+class _NoAliasDumper(yaml.SafeDumper):
+    """The safe dumper, writing a value twice where PyYAML would write an anchor and alias.
+
+    PyYAML writes ``&id001`` / ``*id001`` when one object appears twice; the reader
+    refuses every alias (see ``read_manifest``), so the writer never makes one.
+    """
+
+    def ignore_aliases(self, data: Any) -> bool:
+        return True
+
+
 def manifest_text(manifest: dict[str, Any]) -> str:
     """The one way a manifest is written, so ``check`` can tell a byte that was edited.
 
     Re-dumping a parsed manifest gives back exactly the bytes the store wrote; anything
     else was changed outside colonnade, even where it parses to the same values.
     """
-    return yaml.safe_dump(manifest, sort_keys=False, allow_unicode=True)
+    return yaml.dump(manifest, Dumper=_NoAliasDumper, sort_keys=False, allow_unicode=True)
 
 
 def read_manifest(folder: str | Path) -> dict[str, Any]:
+    """The parsed manifest of ``folder``, or one sentence saying why it cannot be read."""
     folder = Path(folder)
     path = folder / MANIFEST
     if not folder.is_dir():
@@ -47,11 +65,14 @@ def read_manifest(folder: str | Path) -> dict[str, Any]:
     if not path.is_file():
         raise WorkspaceError(f"{folder}: not a workspace (no {MANIFEST}); create one with "
                              f"'colonnade new SPEC -o {folder}'")
+    data = read_bounded(path, MAX_MANIFEST_BYTES, "a manifest")
     try:
-        manifest = yaml.safe_load(path.read_text(encoding="utf-8"))
-    except (yaml.YAMLError, UnicodeDecodeError, OSError):
-        raise WorkspaceError(f"{path}: cannot be read as YAML; restore it from a backup"
-                             ) from None
+        text = data.decode("utf-8")
+    except UnicodeDecodeError:
+        raise WorkspaceError(f"{path}: not UTF-8 text, so not a manifest colonnade wrote; "
+                             f"restore it from a backup") from None
+    manifest = load_yaml(text, str(path), WorkspaceError, aliases=False,
+                         invalid="cannot be read as YAML{at}; restore it from a backup")
     if not isinstance(manifest, dict) or manifest.get("format") != FORMAT:
         raise WorkspaceError(f"{path}: not a colonnade manifest (format is not {FORMAT})")
     if manifest.get("version") != VERSION:

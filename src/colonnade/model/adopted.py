@@ -21,6 +21,7 @@ from __future__ import annotations
 
 import copy
 import hashlib
+import math
 import warnings
 from collections.abc import Callable
 from dataclasses import asdict, dataclass, field
@@ -30,8 +31,10 @@ import torch
 import torch.nn as nn
 
 from ..errors import DataError, SpecError, UsageError
+from .budget import check_activation
 from .exported import load_exported_program
 from .layers import BlockPlan, ColumnPlan, Shape
+from .schema import MAX_SIZE
 from .taps import ORT_SETTINGS, ModuleTaps, OnnxTaps
 
 __all__ = ["ADOPTED_FILE", "AdoptedColumn", "AdoptedRecord", "adopt_module", "adopt_exported",
@@ -162,7 +165,17 @@ def _same_file(column: AdoptedColumn, _incompatible: Any) -> None:
 # ----------------------------------------------------------------------------- adoption
 def _probe_shapes(runner: ModuleTaps | OnnxTaps, input_shape: Shape, what: str,
                   ) -> tuple[list[list[int]], int]:
-    """Tap shapes and class count from one run on two zero samples; refusals named."""
+    """Tap shapes and class count from one run on two zero samples; refusals named.
+
+    The sample shape may come from a manifest, so it is checked before the zeros are
+    allocated: whole positive sizes, one sample within the machine's budget.
+    """
+    if not input_shape or not all(isinstance(n, int) and not isinstance(n, bool)
+                                  and 0 < n <= MAX_SIZE for n in input_shape):
+        raise DataError(f"the adopted model's input shape {list(input_shape)[:8]} is not a "
+                        f"list of positive whole sizes; restore the manifest from a backup")
+    check_activation(math.prod(input_shape), f"{what}: the input", DataError,
+                     "give the input shape the model was certified on")
     x = torch.zeros(2, *input_shape)
     try:
         with torch.no_grad():

@@ -15,6 +15,7 @@ from .adopted import AdoptedColumn
 from .guard import guard
 from .layers import check_width
 from .parts import (
+    MAX_WIDTH,
     AdapterInfo,
     Column,
     ColumnInfo,
@@ -77,8 +78,8 @@ class GrowthEdits:
         """
         self._check_new_task(name, classes)
         class_names = self._check_class_names(classes, class_names)
-        if not (isinstance(width, (int, float)) and 0 < width <= 16):
-            raise UsageError(f"width must be a number in (0, 16], got {width}")
+        if not (isinstance(width, (int, float)) and 0 < width <= MAX_WIDTH):
+            raise UsageError(f"width must be a number in (0, {MAX_WIDTH:g}], got {width}")
         check_width(self.spec, float(width))
         device = self.device
         with torch.random.fork_rng(devices=[]):

@@ -15,13 +15,16 @@ import torch.nn as nn
 from .layers import BlockPlan, ColumnPlan, build_layer, layer_output_shape, plan_column
 from .schema import Spec
 
-__all__ = ["MAX_CLASSES", "TaskInfo", "ColumnInfo", "AdapterInfo", "Closure", "Block", "Column",
-           "CLOSURE_DEFINITION", "CLOSURE_DEFINITIONS"]
+__all__ = ["MAX_CLASSES", "MAX_WIDTH", "TaskInfo", "ColumnInfo", "AdapterInfo", "Closure",
+           "Block", "Column", "CLOSURE_DEFINITION", "CLOSURE_DEFINITIONS"]
 
 # A bound on a task's class count, checked before a head is allocated: far above any task
 # colonnade is meant for, so a larger count is nearly always a label mistake (an id used
 # as a label). Our own limit, not a published figure.
 MAX_CLASSES = 65_536
+# The widest a column may be, as a factor of the template's units (``grow --width``):
+# columns are normally as wide as the template or narrower. Our own bound.
+MAX_WIDTH = 16.0
 
 
 @dataclass

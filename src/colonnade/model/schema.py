@@ -31,6 +31,7 @@ __all__ = [
     "LAYER_KINDS",
     "show_value",
     "ACTIVATIONS",
+    "MAX_SIZE",
 ]
 
 ACTIVATIONS = ("relu", "gelu", "tanh", "sigmoid", "leaky_relu")
@@ -57,16 +58,33 @@ def _is_number(v: Any) -> bool:
     return isinstance(v, (int, float)) and not isinstance(v, bool)
 
 
-def _positive_int(v: Any) -> int:
-    if not _is_int(v) or v <= 0:
-        raise _fail("positive_int", "a positive integer", v)
+# The largest whole number a size in a spec may be (units, channels, kernel, stride,
+# padding, input dimensions, epochs, batch size): far past any real layer, and small
+# enough that a size times a width factor is exact in floating point. Sizes below it are
+# still checked against the machine's memory as a whole (model.budget). Our own bound.
+MAX_SIZE = 2**31 - 1
+# torch.manual_seed takes seeds up to 2**64 - 1 (its documentation).
+MAX_SEED = 2**64 - 1
+
+
+def _bounded(v: Any, low: int, high: int, kind: str, expected: str) -> int:
+    if not _is_int(v) or v < low:
+        raise _fail(kind, expected, v)
+    if v > high:
+        raise _fail(kind, f"{expected} of at most {high:,}", v)
     return v
+
+
+def _positive_int(v: Any) -> int:
+    return _bounded(v, 1, MAX_SIZE, "positive_int", "a positive integer")
 
 
 def _non_negative_int(v: Any) -> int:
-    if not _is_int(v) or v < 0:
-        raise _fail("non_negative_int", "a non-negative integer", v)
-    return v
+    return _bounded(v, 0, MAX_SIZE, "non_negative_int", "a non-negative integer")
+
+
+def _seed(v: Any) -> int:
+    return _bounded(v, 0, MAX_SEED, "seed", "a non-negative integer")
 
 
 def _positive_float(v: Any) -> float:
@@ -116,6 +134,7 @@ def _choice(*options: str):
 
 PosInt = Annotated[int, BeforeValidator(_positive_int)]
 NonNegInt = Annotated[int, BeforeValidator(_non_negative_int)]
+Seed = Annotated[int, BeforeValidator(_seed)]
 PosFloat = Annotated[float, BeforeValidator(_positive_float)]
 NonNegFloat = Annotated[float, BeforeValidator(_non_negative_float)]
 Fraction = Annotated[float, BeforeValidator(_open_fraction)]
@@ -257,7 +276,7 @@ class TrainSpec(_Strict):
     epochs: PosInt = 30
     batch_size: PosInt = 64
     patience: NonNegInt = 5
-    seed: NonNegInt = 0
+    seed: Seed = 0
     val_fraction: Annotated[float, BeforeValidator(_probability)] = 0.2
     # Reuse frozen columns' outputs across epochs (cache.py); cache_mb caps what is held in
     # memory (MiB), the rest spills to a temporary memory-mapped file.

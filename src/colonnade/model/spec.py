@@ -9,13 +9,16 @@ fits the shape before it (through the layer factory's shape inference).
 from __future__ import annotations
 
 import difflib
+import math
 from pathlib import Path
 from typing import Any
 
 from pydantic import ValidationError
 
 from ..errors import SpecError
-from .layers import template_shapes
+from .budget import check_activation, check_tensor_bytes
+from .layers import ColumnPlan, template_shapes
+from .parts import Column
 from .schema import (
     LAYER_KINDS,
     InputSpec,
@@ -158,8 +161,23 @@ def parse_spec(raw: Any) -> Spec:
                         f"[channels, height, width], got {list(spec.input)}")
     if not any(layer.weighted for layer in spec.column):
         raise SpecError("column: needs at least one dense, conv1d or conv2d layer")
-    template_shapes(spec)  # raises SpecError naming the first layer that does not fit
+    plan = template_shapes(spec)  # raises SpecError naming the first layer that does not fit
+    _check_memory(spec, plan)
     return spec
+
+
+def _check_memory(spec: Spec, plan: ColumnPlan) -> None:
+    """Refuse a template whose column, or one sample's activations, exceed the machine.
+
+    The largest activation of a column is the input or a weighted layer's output: the
+    layers after one (norm, activation, dropout, pooling, flatten) keep or shrink it.
+    """
+    fix = "use fewer units, channels or a smaller input"
+    check_activation(math.prod(spec.input), "input", SpecError, fix)
+    for block in plan.blocks:
+        check_activation(math.prod(block.pre_shape), f"column[{block.template_index}]",
+                         SpecError, fix)
+    check_tensor_bytes(lambda: Column(spec), "the spec's column", SpecError, fix)
 
 
 def load_spec(path: str | Path) -> Spec:

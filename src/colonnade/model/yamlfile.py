@@ -1,9 +1,15 @@
-"""Reading YAML files that people write by hand: safe loader, one sentence per problem.
+"""Reading YAML safely: safe loader, bounded expansion, one sentence per problem.
 
-``yaml.safe_load`` keeps the last of two equal keys without a word, and recurses once
-per nesting level, so a file nested thousands deep ends in a RecursionError. Here the
-nesting is measured first on the event stream (which does not recurse), a duplicate key
-is refused naming the key and both lines, and every YAML error becomes one sentence.
+``yaml.safe_load`` keeps the last of two equal keys without a word, recurses once per
+nesting level (a file nested thousands deep ends in a RecursionError), and follows
+aliases: nine lines of anchors and aliases (a "billion laughs" file) stand for a billion
+entries that anything walking the result (a digest, a JSON dump) then spells out. Here the
+event stream is read first, which neither recurses nor expands: the nesting is measured,
+and aliases are either refused outright (a manifest: colonnade never writes them) or
+counted by the size of what they stand for against a budget (files people write by hand).
+A duplicate key is refused naming the key and both lines, and every YAML error becomes one
+sentence. Parsing uses libyaml's C parser when PyYAML has it (the same results, many times
+faster on a large manifest), else PyYAML's own.
 """
 
 from __future__ import annotations
@@ -14,13 +20,19 @@ import yaml
 
 from ..errors import ColonnadeError, SpecError
 
-__all__ = ["MAX_DEPTH", "load_yaml"]
+__all__ = ["MAX_DEPTH", "MAX_NODES", "load_yaml"]
 
 # Far deeper than any spec, profile or manifest needs (a manifest nests about 8 deep).
 MAX_DEPTH = 100
+# What a hand-written file may stand for once its aliases are spelled out: a spec or a
+# hardware profile has a few hundred values, so a million is far beyond any real one and
+# still small enough to walk in a fraction of a second. Our own bound.
+MAX_NODES = 1_000_000
+
+_SafeBase: type[yaml.SafeLoader] = getattr(yaml, "CSafeLoader", yaml.SafeLoader)
 
 
-class _UniqueKeyLoader(yaml.SafeLoader):
+class _UniqueKeyLoader(_SafeBase):  # type: ignore[valid-type,misc]
     """The safe loader, refusing a mapping that repeats a key."""
 
 
@@ -50,34 +62,87 @@ class _Duplicate(Exception):
         self.key, self.first, self.second = key, first, second
 
 
-def _depth(text: str) -> tuple[int, int]:
-    """The deepest nesting of mappings and sequences, and the line where it is reached."""
-    depth = deepest = line = 0
-    for event in yaml.parse(text, Loader=yaml.SafeLoader):
-        if isinstance(event, (yaml.MappingStartEvent, yaml.SequenceStartEvent)):
+class _Refused(Exception):
+    """The event scan found something the file may not hold; ``message`` says what."""
+
+    def __init__(self, message: str) -> None:
+        super().__init__(message)
+        self.message = message
+
+
+_STARTS = (yaml.MappingStartEvent, yaml.SequenceStartEvent)
+_ENDS = (yaml.MappingEndEvent, yaml.SequenceEndEvent)
+
+
+def _too_deep(line: int) -> str:
+    return (f"nested more than {MAX_DEPTH} levels deep (at line {line}); a file of this kind "
+            f"needs only a few levels, so check its brackets and indentation")
+
+
+def _scan(text: str, aliases: bool) -> None:
+    """Walk the event stream once: nesting depth, and aliases refused or budgeted.
+
+    ``total`` counts the values the document stands for with every alias spelled out: an
+    alias adds the size its anchor had where it was defined, so nine levels of ten
+    aliases count as a billion without anything being built.
+    """
+    depth = total = 0
+    sizes: dict[str, int] = {}
+    open_anchors: list[tuple[str | None, int]] = []
+    for event in yaml.parse(text, Loader=_SafeBase):
+        line = event.start_mark.line + 1
+        anchor = getattr(event, "anchor", None)
+        if anchor is not None and not aliases:
+            kind = "alias" if isinstance(event, yaml.AliasEvent) else "anchor"
+            raise _Refused(f"holds a YAML {kind} at line {line}, which colonnade never "
+                           f"writes, so the file was "
+                           f"edited by hand (an alias can stand for billions of values); "
+                           f"restore it from a copy you trust")
+        if isinstance(event, yaml.AliasEvent):
+            total += sizes.get(anchor, 1)
+        elif isinstance(event, yaml.ScalarEvent):
+            total += 1
+            if anchor is not None:
+                sizes[anchor] = 1
+        elif isinstance(event, _STARTS):
+            total += 1
             depth += 1
-            if depth > deepest:
-                deepest, line = depth, event.start_mark.line + 1
+            open_anchors.append((anchor, total - 1))
             if depth > MAX_DEPTH:
-                break
-        elif isinstance(event, (yaml.MappingEndEvent, yaml.SequenceEndEvent)):
+                raise _Refused(_too_deep(line))
+        elif isinstance(event, _ENDS):
             depth -= 1
-    return deepest, line
+            opened, start = open_anchors.pop()
+            if opened is not None:
+                sizes[opened] = total - start
+        if aliases and total > MAX_NODES:
+            raise _Refused(f"stands for more than {MAX_NODES:,} values once its YAML aliases "
+                           f"are expanded (at line {line}); write the values out, or remove "
+                           f"the aliases")
 
 
-def load_yaml(text: str, where: str, error: type[ColonnadeError] = SpecError) -> Any:
-    """Parse ``text`` (the file ``where``) or raise ``error`` with one sentence."""
+def load_yaml(text: str, where: str, error: type[ColonnadeError] = SpecError,
+              aliases: bool = True,
+              invalid: str = "not valid YAML{at}; check indentation and brackets") -> Any:
+    """Parse ``text`` (the file ``where``) or raise ``error`` with one sentence.
+
+    ``aliases=False`` refuses any anchor or alias (files colonnade writes itself);
+    otherwise what the aliases stand for is counted against ``MAX_NODES``. ``invalid`` is
+    the sentence for a file that is not valid YAML (``{at}``: where the parser stopped).
+    """
     try:
-        deepest, line = _depth(text)
-        if deepest > MAX_DEPTH:
-            raise error(f"{where}: nested more than {MAX_DEPTH} levels deep (at line {line}); "
-                        f"a file of this kind needs only a few levels, so check its brackets "
-                        f"and indentation")
+        _scan(text, aliases)
         return yaml.load(text, Loader=_UniqueKeyLoader)  # noqa: S506 (a SafeLoader subclass)
+    except _Refused as refused:
+        raise error(f"{where}: {refused.message}") from None
     except _Duplicate as dup:
         raise error(f"{where}: key {dup.key!r} appears twice, at line {dup.first} and line "
                     f"{dup.second}; keep one of them") from None
     except yaml.YAMLError as exc:
         mark = getattr(exc, "problem_mark", None)
+        if "nesting depth" in str(getattr(exc, "problem", "")):
+            # libyaml stops at its own depth limit (1000) while reading ahead, before the
+            # scan has seen the levels; the same sentence as ours.
+            raise error(f"{where}: {_too_deep(mark.line + 1 if mark else 1)}") from None
         at = f" at line {mark.line + 1}" if mark is not None else ""
-        raise error(f"{where}: not valid YAML{at}; check indentation and brackets") from None
+        raise error(f"{where}: {invalid.format(at=at)}") from None
