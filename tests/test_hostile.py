@@ -325,3 +325,65 @@ def test_ctrl_c_after_the_commit_point_says_the_change_was_committed(workspace, 
     assert main(["show", str(workspace)]) == 130
     assert capsys.readouterr().err == ("colonnade: interrupted after the commit point; the "
                                        "change was committed and the workspace is whole\n")
+
+
+def test_running_out_of_memory_anyway_is_one_sentence(workspace, monkeypatch, capsys):
+    """What no bound foresaw: a MemoryError still ends in one sentence, exit 1."""
+    from colonnade.app import show
+
+    def exhausted(*args, **kwargs):
+        raise MemoryError()
+
+    monkeypatch.setattr(show, "describe", exhausted)
+    assert main(["show", str(workspace)]) == 1
+    assert capsys.readouterr().err == ("colonnade: error: this machine ran out of memory; the "
+                                       "workspace keeps its last committed state\n")
+
+
+# ----------------------------------------------------------------------- in-process bounds
+def test_the_manifest_writer_never_writes_an_alias():
+    """PyYAML writes ``&id001``/``*id001`` for an object that appears twice; the manifest
+    writer spells it out twice instead, since the reader refuses every alias."""
+    shared = {"sha256": "ab" * 32}
+    manifest = {"format": "colonnade-workspace", "history": [shared, shared]}
+    assert "&id" in yaml.safe_dump(manifest)  # the library's own behaviour, for contrast
+    text = manifest_text(manifest)
+    assert "&" not in text and "*" not in text
+    assert yaml.safe_load(text) == manifest
+
+
+def _spec_file(tmp_path: Path, text: str) -> Path:
+    path = tmp_path / "spec.yaml"
+    path.write_text(text)
+    return path
+
+
+def test_a_hand_written_spec_may_use_a_few_aliases_but_not_a_bomb(tmp_path):
+    from colonnade.model.spec import load_spec
+
+    small = _spec_file(tmp_path, "input: [8]\ncolumn:\n- &layer {dense: 6}\n- {act: relu}\n"
+                                 "- *layer\n")
+    assert [layer.model_dump() for layer in load_spec(small).column][2] == {"dense": 6}
+    bomb = _spec_file(tmp_path, "input: [8]\ncolumn: [{dense: 6}]\n" + _laughs("", "name:"))
+    with pytest.raises(colonnade.SpecError, match="stands for more than 1,000,000 values"):
+        load_spec(bomb)
+
+
+@pytest.mark.parametrize("spec,expect", [
+    # 2**31 - 1 units after 2**31 - 1 units: 4.6e18 weights, exabytes on any machine.
+    ({"input": [8], "column": [{"dense": 2**31 - 1}, {"dense": 2**31 - 1}]},
+     "the spec's column needs"),
+    # A convolution keeping 2**31 - 1 positions in 2**31 - 1 channels: one sample's output
+    # alone holds 4.6e18 values.
+    ({"input": [1, 2**31 - 1], "column": [{"conv1d": 2**31 - 1, "kernel": 1},
+                                          {"pool": "global_avg"}]},
+     "column[0]: one sample's output has"),
+    ({"input": [8], "column": [{"dense": 2**31}]},
+     "column[0].dense: expected a positive integer of at most 2,147,483,647"),
+], ids=["weights", "activation", "units"])
+def test_a_spec_past_the_machine_is_refused_before_allocation(spec, expect):
+    from colonnade.model.spec import parse_spec
+
+    with pytest.raises(colonnade.SpecError) as err:
+        parse_spec(spec)
+    assert expect in str(err.value)
