@@ -25,6 +25,7 @@ import shutil
 import signal
 import sys
 import tempfile
+import threading
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
@@ -214,6 +215,36 @@ def _spawned(rank: int, world: int, port: int, request: GrowRequest, staging: st
     run_rank(rank, world, request, staging, progress)
 
 
+def _run_workers(nproc: int, args: tuple[Any, ...]) -> None:
+    """Start ``nproc`` workers running ``_spawned(rank, *args)`` and wait for all of them.
+
+    Ctrl-C on a terminal reaches every process of the foreground group, workers included,
+    and a worker still importing torch would print a traceback. So the workers are started
+    with SIGINT ignored (a disposition a new process inherits, and that Python keeps), and
+    only this process answers Ctrl-C: it kills the workers, waits for them, and lets the
+    KeyboardInterrupt go on (the staging folder is removed by the caller). A Ctrl-C in the
+    moment the processes are being created is not seen; pressing it again stops the run.
+    """
+    main_thread = threading.current_thread() is threading.main_thread()
+    previous = signal.signal(signal.SIGINT, signal.SIG_IGN) if main_thread else None
+    try:
+        context = mp.start_processes(_spawned, args=args, nprocs=nproc, join=False,
+                                     start_method="spawn")
+    finally:
+        if main_thread:
+            signal.signal(signal.SIGINT, previous if previous is not None else signal.SIG_DFL)
+    try:
+        while not context.join():
+            pass
+    except BaseException:
+        for process in context.processes:  # join() kills the others only on a failure
+            if process.is_alive():
+                process.kill()
+        for process in context.processes:
+            process.join()
+        raise
+
+
 def grow_distributed(request: GrowRequest, nproc: int, progress: bool = True,
                      who: Attribution | None = None) -> dict[str, Any]:
     """Grow one task with ``nproc`` local ranks; commit only when all of them succeeded."""
@@ -235,9 +266,7 @@ def grow_distributed(request: GrowRequest, nproc: int, progress: bool = True,
     try:
         staging = str(Path(tmp) / "result")
         try:
-            mp.start_processes(_spawned, args=(nproc, free_port(), request, staging, progress,
-                                               os.getpid()),
-                               nprocs=nproc, join=True, start_method="spawn")
+            _run_workers(nproc, (nproc, free_port(), request, staging, progress, os.getpid()))
         except mp.ProcessRaisedException as exc:
             last = [line for line in str(exc).strip().splitlines() if line.strip()][-1]
             raise WorkerFailed(f"worker rank {exc.error_index} failed ({last.strip()}); the "
