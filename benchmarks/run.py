@@ -11,7 +11,8 @@ this same process, beside the ideal ratio from operation counts where one exists
    same layers and weights, at batch 1 and 256;
 4. achieved GFLOP/s of a wide dense column at batch 256 against a large fp32 matmul;
 5. shipped artifacts in onnxruntime: one all-task file against one file per task, int8
-   against float32, and their file sizes (benchmarks/shipping.py).
+   against float32 and their file sizes, on the demo's template and on a wide network
+   (benchmarks/shipping.py).
 
 Operation counts come from torch.utils.flop_counter.FlopCounterMode (matmuls and
 convolutions; one multiply-accumulate is 2 FLOPs), not from colonnade's own accounting.
@@ -155,13 +156,13 @@ CACHE_WIDTH, CACHE_BATCH = 512, 256
 
 def bench_cache(kind: str, quick: bool) -> None:
     width, inputs, classes, batch = CACHE_WIDTH, CACHE_WIDTH, 10, CACHE_BATCH
-    n = 2048 if quick else 4096
+    n = 1024 if quick else 2048
     data = random_data(inputs, classes, n, n // 4)
     base = grown_net(dense_spec(width, inputs, 3, kind, batch), 5, classes)
     probe = copy.deepcopy(base)
     probe.add_column("task6", classes, seed=5)
     ideal = training_ideal(probe, "task6", data, batch)
-    epochs = 2 if quick else 3
+    epochs = 2
     per_epoch: dict[bool, list[float]] = {True: [], False: []}
     build = []
     for _ in range(2):
@@ -293,6 +294,8 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--threads", type=int, default=1,
                         help="torch threads (default 1: steady on a shared machine)")
     parser.add_argument("--quick", action="store_true", help="fewer rows and repeats")
+    parser.add_argument("--int8-variants", action="store_true",
+                        help="also measure three alternative int8 settings (benchmark 5)")
     args = parser.parse_args(argv)
     if args.threads:
         torch.set_num_threads(args.threads)
@@ -301,18 +304,30 @@ def main(argv: list[str] | None = None) -> int:
     print(f"machine: {machine()}")
     print(f"python {platform.python_version()}, torch {torch.__version__}, colonnade "
           f"{__version__}; {torch.get_num_threads()} torch threads; device cpu; float32")
+    section = [time.perf_counter()]
+
+    def took() -> None:  # each section's wall time, so a slow one shows
+        now = time.perf_counter()
+        print(f"  ({now - section[0]:.0f} s)")
+        section[0] = now
+
     print(f"1. training task 6 (five frozen columns, 3 x dense {CACHE_WIDTH}, batch "
           f"{CACHE_BATCH}), epoch time:")
     for kind in ("linear", "nonlinear"):
         bench_cache(kind, args.quick)
+    took()
     print("2. six tasks (six columns, 3 x dense 256, linear laterals), forward:")
     net = bench_all_tasks(args.quick)
+    took()
     print("3. task 6 forward against a hand-written plain module, same layers and weights:")
     bench_plain(net, args.quick)
+    took()
     print("4. achieved throughput of one wide dense column:")
     bench_gflops(args.quick)
-    print("5. shipped artifacts in onnxruntime, one thread (the demo's template, 12 tasks):")
-    bench_shipping(args.quick, verdict)
+    took()
+    print("5. shipped artifacts in onnxruntime, one thread:")
+    bench_shipping(args.quick, verdict, args.int8_variants)
+    took()
     print(f"total {time.perf_counter() - start:.0f} s")
     return 0
 

@@ -127,3 +127,33 @@ def test_calibration_digest_names_the_data(digits_ws):
               + field(struct.pack(f"<{rows.ndim}Q", *rows.shape)) + field(rows.tobytes()))
     assert r["meta"]["calibration"]["sha256"] == hashlib.sha256(record).hexdigest()
     assert r["meta"]["calibration"]["samples"] == len(rows)
+
+
+def test_short_names_change_no_operator_and_no_output(digits_ws):
+    """The int8 file's internal names are shortened (the quantiser's long names were a
+    quarter of a small model's file); onnx's protos show the same operators, attributes
+    and tensors in the same order, and onnxruntime gives bit-identical outputs."""
+    import onnxruntime as ort
+
+    from colonnade.files.artifact import artifact_blob, artifact_model
+    from colonnade.files.onnx_export import onnx_bytes
+    from colonnade.files.quantize import short_names
+
+    tmp, ws, tasks = digits_ws
+    net = load(ws)
+    blob = artifact_blob(net, net.tasks)
+    data = onnx_bytes(artifact_model(blob), list(net.input_shape), blob["meta"])
+    short = short_names(data)
+    a, b = onnx.load_from_string(data), onnx.load_from_string(short)
+    assert len(short) < len(data)
+    assert [(n.op_type, n.attribute) for n in a.graph.node] == [
+        (n.op_type, n.attribute) for n in b.graph.node]
+    assert [t.raw_data for t in a.graph.initializer] == [t.raw_data for t in b.graph.initializer]
+    assert [v.name for v in b.graph.input] == ["x"]
+    assert [v.name for v in b.graph.output] == net.tasks
+    assert not b.graph.value_info and all(not n.name for n in b.graph.node)
+    x = tasks[0]["x_test"][:64].astype(np.float32)
+    runs = [ort.InferenceSession(m, providers=["CPUExecutionProvider"]).run(None, {"x": x})
+            for m in (data, short)]
+    for got, want in zip(runs[1], runs[0], strict=True):
+        assert np.array_equal(got, want)

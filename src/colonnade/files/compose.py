@@ -86,8 +86,8 @@ def _rename(graph: Any, names: dict[str, str]) -> None:
     def new(name: str) -> str:
         return name if not name else names.get(name, PREFIX + name)
 
-    for node in graph.node:
-        node.name = PREFIX + node.name if node.name else node.name
+    for i, node in enumerate(graph.node):
+        node.name = PREFIX + (node.name or f"_{i:x}")  # named, so it is told apart
         node.input[:] = [new(n) for n in node.input]
         node.output[:] = [new(n) for n in node.output]
         for attr in node.attribute:

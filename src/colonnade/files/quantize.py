@@ -19,7 +19,19 @@ Settings, each measured here (benchmarks/run.py, tests/test_int8.py):
   2.2x (batch 64) on a 12-task dense network;
 * the float model is first run through onnxruntime's own pre-processing
   (``quant_pre_process``: shape inference and graph clean-up), as its documentation
-  advises before quantising.
+  advises before quantising;
+* every operator is quantised, in QDQ form: quantising only MatMul/Gemm/Conv, or
+  onnxruntime's QOperator form, was no faster and no smaller on either network of
+  ``benchmarks/run.py --int8-variants`` (the demo's template and a wide one);
+* the quantiser's long value names are shortened and node names and intermediate shape
+  annotations dropped (``short_names``): on the demo's template they were a quarter of
+  the int8 file (0.34x the float file's size with them, 0.29x without).
+
+int8 is faster only where each operator does enough work: onnxruntime's int8 kernels
+cost more per call than the float ones (quantise the input, requantise the output), so
+a graph of many small layers (the demo's 128-64 columns, about 2,800 multiply-
+accumulates an operator per sample) runs slower in int8 at batch 1, while a wide one
+(512-256, about 58,000) runs faster (README, "Figures", benchmark 5).
 """
 
 from __future__ import annotations
@@ -37,7 +49,7 @@ from ..errors import ColonnadeError
 from .onnx_export import INPUT_NAME
 
 __all__ = ["QUANTISATION", "CALIBRATION_BATCH", "quantize_int8", "size_breakdown",
-           "QuantisationFailed"]
+           "QuantisationFailed", "short_names"]
 
 CALIBRATION_BATCH = 64
 QUANTISATION = {"toolkit": "onnxruntime.quantization.quantize_static", "format": "QDQ",
@@ -103,27 +115,80 @@ def quantize_int8(float_model: bytes, calibration: np.ndarray | dict[str, np.nda
             raise QuantisationFailed(f"onnxruntime could not quantise the model "
                                      f"({type(exc).__name__}: {str(exc).splitlines()[0]}); "
                                      f"export without --int8") from None
-        return out.read_bytes()
+        return short_names(out.read_bytes())
+
+
+def short_names(data: bytes) -> bytes:
+    """The model with every internal value renamed ``_0``, ``_1``, ... and node names and
+    intermediate shape annotations (``value_info``) cleared: the graph's inputs and
+    outputs keep their names; no operator, attribute or tensor changes.
+
+    The quantiser names each value after the ones it came from (``..._QuantizeLinear_
+    Output``, ``..._zero_point``), so in a QDQ graph of many small layers the names
+    made up a quarter of the file (426 kB of 1.78 MB on the demo's template grown to 12
+    tasks, benchmarks/shipping.py). ONNX asks only that value names be unique and lets
+    node names be empty. Names starting with ``_`` cannot clash with a task name, which
+    starts with a letter.
+    """
+    import onnx
+
+    proto = onnx.load_from_string(data)
+    graph = proto.graph
+    for node in graph.node:
+        if any(a.type in (onnx.AttributeProto.GRAPH, onnx.AttributeProto.GRAPHS)
+               for a in node.attribute):
+            return data  # subgraphs see outer names: leave such a model as it is
+    keep = {v.name for v in (*graph.input, *graph.output)}
+    names: dict[str, str] = {}
+
+    def short(name: str) -> str:
+        if not name or name in keep:
+            return name
+        return names.setdefault(name, f"_{len(names):x}")
+
+    for node in graph.node:
+        node.name = ""
+        node.input[:] = [short(n) for n in node.input]
+        node.output[:] = [short(n) for n in node.output]
+    for item in graph.initializer:
+        item.name = short(item.name)
+    # Shapes of intermediate values, which the pre-processing's shape inference wrote in:
+    # an annotation that onnxruntime infers again when it loads the file.
+    del graph.value_info[:]
+    return proto.SerializeToString()
+
+
+def _roles(graph: object) -> dict[str, str]:
+    """Quantisation parameters by the place they are read: input 1 of a QuantizeLinear or
+    DequantizeLinear is a scale, input 2 a zero point (the ONNX operators' definition)."""
+    roles: dict[str, str] = {}
+    for node in graph.node:
+        if node.op_type in ("QuantizeLinear", "DequantizeLinear"):
+            for position, role in ((1, "scales"), (2, "zero_points")):
+                if len(node.input) > position and node.input[position]:
+                    roles[node.input[position]] = role
+    return roles
 
 
 def size_breakdown(data: bytes) -> dict[str, int]:
-    """Bytes of an ONNX file by what they hold, from the names onnxruntime's quantiser
-    gives: int8 weights (``*_quantized``), int32 biases, quantisation scales and zero
-    points, float tensors left unquantised, and the rest (graph, names, metadata)."""
+    """Bytes of an ONNX file by what they hold: int8 weights, int32 biases, quantisation
+    scales and zero points (by where QuantizeLinear/DequantizeLinear read them), float
+    tensors left unquantised, and the rest (graph, names, metadata)."""
     import onnx
 
     proto = onnx.load_from_string(data)
     out = {"file": len(data), "int8_weights": 0, "int32_biases": 0, "scales": 0,
            "zero_points": 0, "float_tensors": 0, "other_tensors": 0}
     tensors = list(proto.graph.initializer)
+    roles = _roles(proto.graph)
     for node in proto.graph.node:
-        tensors += [a.t for a in node.attribute if a.type == onnx.AttributeProto.TENSOR]
-    for t in tensors:
+        tensors += [(a.t, node.output[0]) for a in node.attribute
+                    if a.type == onnx.AttributeProto.TENSOR]
+    for item in tensors:
+        t, name = item if isinstance(item, tuple) else (item, item.name)
         size = len(onnx.numpy_helper.to_array(t).tobytes())
-        if "zero_point" in t.name:
-            out["zero_points"] += size
-        elif t.name.endswith("_scale") or "_scale_" in t.name:
-            out["scales"] += size
+        if name in roles:
+            out[roles[name]] += size
         elif t.data_type == onnx.TensorProto.INT8:
             out["int8_weights"] += size
         elif t.data_type == onnx.TensorProto.INT32:
