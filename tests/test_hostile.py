@@ -416,3 +416,19 @@ def test_a_spec_past_the_machine_is_refused_before_allocation(spec, expect):
     with pytest.raises(colonnade.SpecError) as err:
         parse_spec(spec)
     assert expect in str(err.value)
+
+
+def test_a_manifest_packed_with_values_is_refused_while_scanned(workspace, tmp_path, monkeypatch):
+    """Two bytes a value (``[1,1,...]``) would make a manifest under the size limit build
+    millions of objects; the count is refused during the scan. The limit is lowered here
+    (to 5,000) so the test writes kilobytes, not megabytes."""
+    from colonnade.files import manifest as manifest_module
+
+    monkeypatch.setattr(manifest_module, "MAX_MANIFEST_VALUES", 5_000)
+    ws = _copy(workspace, tmp_path)
+    with open(ws / "manifest.yaml", "a") as f:
+        f.write("padding: [" + "1," * 6_000 + "1]\n")
+    with pytest.raises(colonnade.WorkspaceError, match="holds more than 5,000 values"):
+        read_manifest(ws)
+    # The workspace as written (under a thousand values) still reads under that limit.
+    assert read_manifest(_copy(workspace, tmp_path / "b"))["format"] == "colonnade-workspace"

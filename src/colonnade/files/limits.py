@@ -16,7 +16,8 @@ from pathlib import Path
 
 from ..errors import WorkspaceError
 
-__all__ = ["confined", "sha256_file", "read_bounded", "CHUNK", "MAX_MANIFEST_BYTES"]
+__all__ = ["confined", "sha256_file", "read_bounded", "CHUNK", "MAX_MANIFEST_BYTES",
+           "MAX_MANIFEST_VALUES"]
 
 CHUNK = 1 << 20  # hashing reads 1 MiB at a time, whatever the file's size
 # The largest manifest colonnade reads. A manifest holds the spec, the network's layout,
@@ -24,6 +25,12 @@ CHUNK = 1 << 20  # hashing reads 1 MiB at a time, whatever the file's size
 # tasks stays far below this, while a file of this size still parses in seconds. Our own
 # bound (the manifests colonnade writes measured a few KiB to a few hundred KiB).
 MAX_MANIFEST_BYTES = 32 << 20
+# The most values (YAML scalars, mappings and sequences) a manifest may hold. Manifests
+# colonnade writes hold one value per 14 to 15 bytes (measured on a small workspace and on
+# a 28.5 MiB one), so a manifest of MAX_MANIFEST_BYTES holds about 2.3 million; a file
+# packed with two-byte values (``[1,1,1,...``) would hold 16 million, and building them
+# would take gigabytes, so it is refused while it is scanned, before anything is built.
+MAX_MANIFEST_VALUES = 3_000_000
 
 
 def confined(folder: Path, relative: str) -> Path:

@@ -4,9 +4,10 @@ only the record.
 The manifest (``manifest.yaml``) names every file of the workspace with its SHA-256 and
 holds the spec, the network's architecture, the history, seals, records and a summary of
 the network's sizes written at every save. A workspace may come from anyone, so the
-manifest is refused unread when it is larger than ``MAX_MANIFEST_BYTES``, and parsed by
-the safe loader with every YAML anchor and alias refused: colonnade never writes them, and
-an alias bomb (a few lines standing for billions of values) is stopped before anything
+manifest is refused unread when it is larger than ``MAX_MANIFEST_BYTES``, refused while
+it is scanned when it holds more than ``MAX_MANIFEST_VALUES`` values, and parsed by the
+safe loader with every YAML anchor and alias refused: colonnade never writes them, and an
+alias bomb (a few lines standing for billions of values) is stopped before anything
 expands it.
 Loading tensors is ``files.store``'s job; this module never imports torch, so that
 read-only verbs start fast.
@@ -21,7 +22,7 @@ import yaml
 
 from ..errors import WorkspaceError
 from ..model.yamlfile import load_yaml
-from .limits import MAX_MANIFEST_BYTES, read_bounded
+from .limits import MAX_MANIFEST_BYTES, MAX_MANIFEST_VALUES, read_bounded
 
 __all__ = ["MANIFEST", "WEIGHTS", "FORMAT", "VERSION", "RESERVED", "MAX_MANIFEST_BYTES",
            "read_manifest", "manifest_text"]
@@ -72,7 +73,8 @@ def read_manifest(folder: str | Path) -> dict[str, Any]:
         raise WorkspaceError(f"{path}: not UTF-8 text, so not a manifest colonnade wrote; "
                              f"restore it from a backup") from None
     manifest = load_yaml(text, str(path), WorkspaceError, aliases=False,
-                         invalid="cannot be read as YAML{at}; restore it from a backup")
+                         invalid="cannot be read as YAML{at}; restore it from a backup",
+                         max_nodes=MAX_MANIFEST_VALUES)
     if not isinstance(manifest, dict) or manifest.get("format") != FORMAT:
         raise WorkspaceError(f"{path}: not a colonnade manifest (format is not {FORMAT})")
     if manifest.get("version") != VERSION:

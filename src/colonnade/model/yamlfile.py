@@ -26,7 +26,8 @@ __all__ = ["MAX_DEPTH", "MAX_NODES", "load_yaml"]
 MAX_DEPTH = 100
 # What a hand-written file may stand for once its aliases are spelled out: a spec or a
 # hardware profile has a few hundred values, so a million is far beyond any real one and
-# still small enough to walk in a fraction of a second. Our own bound.
+# still small enough to walk in a second. Our own bound; callers reading bigger files
+# (manifests) pass their own.
 MAX_NODES = 1_000_000
 
 _SafeBase: type[yaml.SafeLoader] = getattr(yaml, "CSafeLoader", yaml.SafeLoader)
@@ -79,7 +80,7 @@ def _too_deep(line: int) -> str:
             f"needs only a few levels, so check its brackets and indentation")
 
 
-def _scan(text: str, aliases: bool) -> None:
+def _scan(text: str, aliases: bool, max_nodes: int) -> None:
     """Walk the event stream once: nesting depth, and aliases refused or budgeted.
 
     ``total`` counts the values the document stands for with every alias spelled out: an
@@ -115,23 +116,30 @@ def _scan(text: str, aliases: bool) -> None:
             opened, start = open_anchors.pop()
             if opened is not None:
                 sizes[opened] = total - start
-        if aliases and total > MAX_NODES:
-            raise _Refused(f"stands for more than {MAX_NODES:,} values once its YAML aliases "
-                           f"are expanded (at line {line}); write the values out, or remove "
-                           f"the aliases")
+        if total > max_nodes:
+            if sizes:
+                raise _Refused(f"stands for more than {max_nodes:,} values once its YAML "
+                               f"aliases are expanded (at line {line}); write the values out, "
+                               f"or remove the aliases")
+            raise _Refused(f"holds more than {max_nodes:,} values (at line {line}), more than "
+                           f"a file of this kind ever needs; it was not written by colonnade, "
+                           f"so restore it from a copy you trust")
 
 
 def load_yaml(text: str, where: str, error: type[ColonnadeError] = SpecError,
               aliases: bool = True,
-              invalid: str = "not valid YAML{at}; check indentation and brackets") -> Any:
+              invalid: str = "not valid YAML{at}; check indentation and brackets",
+              max_nodes: int = MAX_NODES) -> Any:
     """Parse ``text`` (the file ``where``) or raise ``error`` with one sentence.
 
     ``aliases=False`` refuses any anchor or alias (files colonnade writes itself);
-    otherwise what the aliases stand for is counted against ``MAX_NODES``. ``invalid`` is
-    the sentence for a file that is not valid YAML (``{at}``: where the parser stopped).
+    otherwise what the aliases stand for is counted. Either way the file may stand for at
+    most ``max_nodes`` values (scalars, mappings and sequences), counted before anything
+    is built. ``invalid`` is the sentence for a file that is not valid YAML (``{at}``:
+    where the parser stopped).
     """
     try:
-        _scan(text, aliases)
+        _scan(text, aliases, max_nodes)
         return yaml.load(text, Loader=_UniqueKeyLoader)  # noqa: S506 (a SafeLoader subclass)
     except _Refused as refused:
         raise error(f"{where}: {refused.message}") from None
