@@ -50,13 +50,14 @@ def _spec(tmp_path: Path) -> str:
     return str(path)
 
 
-def _onnx_file(tmp_path: Path) -> Path:
-    """small_cnn through torch's TorchScript-based exporter: an ONNX file made elsewhere."""
+def _onnx_file(tmp_path: Path, opset: int | None = None) -> Path:
+    """small_cnn through torch's TorchScript-based exporter: an ONNX file made elsewhere
+    (its default operator set is 20)."""
     buf = io.BytesIO()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         torch.onnx.export(small_cnn(), (torch.zeros(2, *SHAPE),), buf, dynamo=False,
-                          input_names=["image"], output_names=["y"],
+                          input_names=["image"], output_names=["y"], opset_version=opset,
                           dynamic_axes={"image": {0: "n"}, "y": {0: "n"}})
     path = tmp_path / "inspect.onnx"
     path.write_bytes(buf.getvalue())
@@ -234,3 +235,28 @@ def test_module_adopted_column_goes_into_the_pt_file(tmp_path):
         got, want = model(x), net.forward_all(x)
     for task, values in zip(model.tasks, got, strict=True):
         assert torch.equal(values, want[task]), task
+
+
+def test_an_older_operator_set_is_kept_and_one_too_old_is_refused(tmp_path, capsys):
+    path = _onnx_file(tmp_path, opset=17)  # ReduceMean's axes were an attribute before 18
+    ws, net = _workspace(str(path), ONNX_TAPS, tmp_path, seal=False)
+    out = tmp_path / "all.onnx"
+    assert main(["export", str(ws), "--all", "-o", str(out)]) == 0
+    composed = onnx.load(out)
+    assert [(o.domain, o.version) for o in composed.opset_import] == [("", 17)]
+    _assert_adopted_graph_unchanged(composed, onnx.load(path))
+    x = np.random.default_rng(4).random((20, *SHAPE), dtype=np.float32)
+    got = _batched(_session(str(out)), "x", x)
+    assert np.array_equal(got[0], _batched(_session(str(path)), "image", x)[0])
+    with torch.no_grad():
+        want = net.forward_all(torch.from_numpy(x))
+    assert np.abs(got[1] - want["new"].numpy()).max() <= ONNX_TOLERANCE
+
+    old = tmp_path / "old"
+    old.mkdir()
+    ws13, _ = _workspace(str(_onnx_file(old, opset=13)), ONNX_TAPS, old, seal=False)
+    capsys.readouterr()
+    assert main(["export", str(ws13), "--all", "-o", str(old / "all.onnx")]) != 0
+    err = capsys.readouterr().err.strip()
+    assert "operator set 13" in err and "opset 18 or later" in err and "\n" not in err
+    assert not (old / "all.onnx").exists()

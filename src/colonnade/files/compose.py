@@ -16,11 +16,12 @@ read an adopted ONNX model is not exported from torch as a whole. It is composed
    graph's own input name (when that is not ``x``) and the adopted logits out to the
    adopted task's output name.
 
-The whole file keeps the adopted model's operator set (the new parts are exported at
-that version), because raising it could change what the adopted nodes mean; the IR
-version is the newer of the two. onnx's checker validates the result, and the tests
-compare the adopted nodes' protos and run the file against the adopted model alone in
-onnxruntime (tests/test_adopted_export.py).
+The whole file keeps the adopted model's operator set, because raising it could change
+what the adopted nodes mean: the new parts are exported at that version when it is 18
+(torch's exporter's own) or later, else at 18 and converted down by onnx's version
+converter. The IR version is the newer of the two. onnx's checker validates the result,
+and the tests compare the adopted nodes' protos and run the file against the adopted
+model alone in onnxruntime (tests/test_adopted_export.py).
 
 int8: only the new parts are quantised (files/quantize.py, calibrated on the artifact's
 calibration rows and the adopted model's tap values for them); the adopted nodes stay in
@@ -41,6 +42,7 @@ from ..model.network import ProgressiveNet
 from .artifact import ExportError, artifact_model
 from .onnx_export import (
     INPUT_NAME,
+    ONNX_OPSET,
     export_model,
     import_onnx,
     onnx_bytes,
@@ -53,6 +55,9 @@ from .standalone import ArtifactModel
 __all__ = ["PREFIX", "compose_adopted", "adopted_node_protos", "given_names", "onnx_artifact"]
 
 PREFIX = "colonnade/"
+# Reductions whose axes became an input, with the attribute noop_with_empty_axes, in 18.
+_REDUCE_18 = {"ReduceMean", "ReduceMax", "ReduceMin", "ReduceProd", "ReduceL1", "ReduceL2",
+              "ReduceLogSum", "ReduceLogSumExp", "ReduceSumSquare"}
 
 
 def given_names(count: int) -> list[str]:
@@ -113,6 +118,25 @@ def _merged_opsets(onnx: Any, a: Any, b: Any) -> list[Any]:
     return [onnx.helper.make_opsetid(d, v) for d, v in versions.items()]
 
 
+def _converted(onnx: Any, data: bytes, opset: int) -> bytes:
+    """The new parts in an older operator set, by onnx's own version converter (run on
+    the exported, constant-folded graph, where it finds every axes input it needs)."""
+    try:
+        proto = onnx.version_converter.convert_version(onnx.load_from_string(data), opset)
+    except Exception:  # the converter raises several kinds; one sentence
+        raise ExportError(f"the new parts cannot be written in operator set {opset}, the "
+                          f"adopted ONNX model's (onnx's version converter has no way down "
+                          f"for one of their operators); re-export the adopted model at "
+                          f"opset {ONNX_OPSET} or later, adopt that file, and grow again"
+                          ) from None
+    for node in proto.graph.node:  # the converter keeps an attribute opset 18 introduced
+        if node.op_type in _REDUCE_18 and opset < 18:
+            kept = [a for a in node.attribute if a.name != "noop_with_empty_axes" or a.i != 0]
+            del node.attribute[:]
+            node.attribute.extend(kept)  # 0 was the only behaviour before 18
+    return proto.SerializeToString()
+
+
 def compose_adopted(adopted: bytes, taps: list[str], model: ArtifactModel,
                     input_shape: list[int], given_shapes: list[list[int]],
                     quantize: Callable[[bytes, dict[str, np.ndarray]], bytes] | None = None,
@@ -141,8 +165,11 @@ def compose_adopted(adopted: bytes, taps: list[str], model: ArtifactModel,
                           f"the task")
     given = given_names(len(given_shapes))
     examples = (torch.zeros(2, *input_shape), *(torch.zeros(2, *s) for s in given_shapes))
+    opset = _default_opset(orig)
     part = export_model(model, examples, [INPUT_NAME, *given], list(model.tasks),
-                        _default_opset(orig))
+                        max(opset, ONNX_OPSET))
+    if opset < ONNX_OPSET:
+        part = _converted(onnx, part, opset)
     if quantize is not None:
         part = quantize(part, calibration or {})
     new = onnx.load_from_string(part)
