@@ -34,7 +34,7 @@ import colonnade
 from colonnade.app.distributed_grow import GrowRequest, grow_distributed
 from colonnade.cli import main
 from colonnade.evidence import record
-from colonnade.files.manifest import MAX_MANIFEST_BYTES, manifest_text, read_manifest
+from colonnade.files.manifest import MANIFEST, MAX_MANIFEST_BYTES, manifest_text, read_manifest
 
 MEMORY_LIMIT = 3 << 30
 TIMEOUT_S = 30  # torch's import alone takes seconds on a shared 2-core machine
@@ -74,7 +74,7 @@ def _rechained(ws: Path, edit) -> Path:
     manifest = read_manifest(ws)
     edit(manifest)
     record.extend(manifest, record.Attribution(verb="hand-edit"))
-    (ws / "manifest.yaml").write_text(manifest_text(manifest), encoding="utf-8")
+    (ws / MANIFEST).write_text(manifest_text(manifest), encoding="utf-8")
     return ws
 
 
@@ -123,9 +123,9 @@ def _laughs(indent: str, first: str) -> str:
 # ----------------------------------------------------------------------- alias bombs
 def test_alias_bomb_in_history_is_refused_by_show(workspace, tmp_path):
     ws = _copy(workspace, tmp_path)
-    text = (ws / "manifest.yaml").read_text()
+    text = (ws / MANIFEST).read_text()
     assert "\nhistory:\n" in text
-    (ws / "manifest.yaml").write_text(text.replace("\nhistory:\n",
+    (ws / MANIFEST).write_text(text.replace("\nhistory:\n",
                                                    "\nhistory:\n" + _laughs("", "- laughs:"), 1))
     line = _refused(ws, "show", ws, "--json", expect="YAML anchor")
     assert "edited by hand" in line
@@ -133,17 +133,17 @@ def test_alias_bomb_in_history_is_refused_by_show(workspace, tmp_path):
 
 def test_alias_bomb_in_a_seal_entry_is_refused_by_check(workspace, tmp_path):
     ws = _copy(workspace, tmp_path)
-    text = (ws / "manifest.yaml").read_text()
+    text = (ws / MANIFEST).read_text()
     entry = "\nseals:\n  a:\n  - version: 1\n"
     assert entry in text
-    (ws / "manifest.yaml").write_text(text.replace(entry, entry + _laughs("    ", "laughs:"), 1))
+    (ws / MANIFEST).write_text(text.replace(entry, entry + _laughs("    ", "laughs:"), 1))
     _refused(ws, "check", ws, expect="YAML anchor", report=True)
 
 
 def test_a_manifest_over_the_size_limit_is_refused_unread(workspace, tmp_path):
     ws = _copy(workspace, tmp_path)
     # A sparse file: its size is past the limit while it takes no room on disk.
-    os.truncate(ws / "manifest.yaml", MAX_MANIFEST_BYTES + 1)
+    os.truncate(ws / MANIFEST, MAX_MANIFEST_BYTES + 1)
     line = _refused(ws, "show", ws, expect="more than the")
     assert f"{MAX_MANIFEST_BYTES:,} bytes" in line
 
@@ -426,7 +426,7 @@ def test_a_manifest_packed_with_values_is_refused_while_scanned(workspace, tmp_p
 
     monkeypatch.setattr(manifest_module, "MAX_MANIFEST_VALUES", 5_000)
     ws = _copy(workspace, tmp_path)
-    with open(ws / "manifest.yaml", "a") as f:
+    with open(ws / MANIFEST, "a") as f:
         f.write("padding: [" + "1," * 6_000 + "1]\n")
     with pytest.raises(colonnade.WorkspaceError, match="holds more than 5,000 values"):
         read_manifest(ws)
