@@ -30,7 +30,7 @@ from colonnade.files.compose import PREFIX, onnx_artifact
 from colonnade.files.onnx_export import read_metadata
 from colonnade.files.runtime import RUN_BATCH
 from colonnade.files.standalone import load_artifact
-from colonnade.files.store import create
+from colonnade.files.store import create, read_manifest
 from colonnade.model.exported import load_exported_program
 from colonnade.training.validation import store_validation
 
@@ -167,6 +167,15 @@ def test_onnx_adopted_int8_quantises_only_the_new_parts(tmp_path, capsys):
     got = _batched(_session(str(out)), "x", x)
     assert np.array_equal(got[0], _batched(_session(str(path)), "image", x)[0])
     assert main(["check", str(ws), "--artifact", str(out)]) == 0
+    # the size report names the adopted model's float tensors (numpy's byte count of
+    # onnx's initializers) among the causes, which still add up to the difference
+    size = [e for e in read_manifest(ws)["history"] if e.get("step") == "artifact_exported"
+            ][-1]["size"]
+    adopted = sum(onnx.numpy_helper.to_array(t).nbytes for t in original.graph.initializer
+                  if t.data_type == onnx.TensorProto.FLOAT)
+    assert size["causes"]["the adopted ONNX model's tensors, in float as certified"] == adopted
+    assert sum(size["causes"].values()) == size["difference"] == out.stat().st_size - size[
+        "ledger_int8_bytes"]
 
 
 def test_onnx_adopted_to_pt_is_refused_in_one_sentence(tmp_path, capsys):

@@ -186,7 +186,7 @@ def _ledger_int8_bytes(net: ProgressiveNet, names: list[str]) -> int:
     return sum(t.numel() for k, t in state.items() if k in params) * DTYPE_BYTES["int8"]
 
 
-def _size_report(data: bytes, ledger: int) -> dict[str, Any]:
+def _size_report(data: bytes, ledger: int, adopted: bytes = b"") -> dict[str, Any]:
     """The file's bytes against the ledger's (1 B a parameter), the difference by cause.
 
     The causes add up to the difference exactly: biases stored as int32 (3 B more each),
@@ -197,10 +197,13 @@ def _size_report(data: bytes, ledger: int) -> dict[str, Any]:
     """
     parts = size_breakdown(data)
     biases = parts["int32_biases"] // 4
+    # An adopted ONNX model's tensors are in the file as certified, in float (compose.py).
+    kept = size_breakdown(adopted)["float_tensors"] if adopted else 0
     causes = {"biases as int32 (3 B more each)": 3 * biases,
               "quantisation scales": parts["scales"],
               "zero points": parts["zero_points"],
-              "tensors left in float": parts["float_tensors"],
+              "the adopted ONNX model's tensors, in float as certified": kept,
+              "tensors left in float": parts["float_tensors"] - kept,
               "other tensors": parts["other_tensors"],
               "graph, names and metadata": parts["graph_and_metadata"],
               "parameters not in int8 (norms folded or kept in float)":
@@ -270,7 +273,9 @@ def export_artifact(folder: str | Path, out: str | Path, task: str | None = None
             if why:
                 more = f" (and {len(why) - 1} more task(s))" if len(why) > 1 else ""
                 raise ExportRefused(f"nothing written: {why[0]}{more}")
-            size = _size_report(data, _ledger_int8_bytes(net, names)) if int8 else None
+            adopted = meta.get("adopted") or {}
+            kept = net.adopted.data if adopted.get("runtime") == "onnxruntime" else b""
+            size = _size_report(data, _ledger_int8_bytes(net, names), kept) if int8 else None
             staged = out.with_name(f".{out.name}.{meta['export_id']}.tmp")
             atomic_write(staged, data)
             entry = {"step": EXPORT_STEP, "time": now(), "export_id": meta["export_id"],
