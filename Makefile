@@ -6,9 +6,9 @@ STAMP := $(VENV)/.installed
 # torch is pinned here (the CPU wheel); the package itself asks only for a range.
 TORCH_PIN := torch==2.13.0
 
-.PHONY: setup demo test bench lint graphviz pdflibs clean
+.PHONY: setup demo test bench crash lint graphviz pdflibs tools clean
 
-setup: $(STAMP) graphviz pdflibs
+setup: $(STAMP) graphviz pdflibs tools
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -38,6 +38,16 @@ pdflibs:
 		echo "note: install $(PDF_DEBS) (Debian) for report.pdf and its tests"; \
 	fi
 
+# strace kills real commands at real system calls in the crash tests (tests/test_crash.py).
+tools:
+	@if command -v strace >/dev/null 2>&1; then :; \
+	elif [ "$$(id -u)" = "0" ] && command -v apt-get >/dev/null 2>&1; then \
+		echo "installing strace (for the crash tests)"; \
+		apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq strace >/dev/null; \
+	else \
+		echo "note: install strace (Debian: sudo apt-get install strace) for the crash tests"; \
+	fi
+
 demo: setup
 	PATH="$(CURDIR)/$(VENV)/bin:$$PATH" bash examples/demo.sh
 
@@ -49,6 +59,10 @@ test: setup
 bench: setup
 	$(PY) benchmarks/run.py
 	for f in benchmarks/bench_*.py; do $(PY) $$f || exit 1; done
+
+# Every pair of crashes (the grow killed at step i, the next write at step j): minutes.
+crash: setup
+	$(PY) benchmarks/crash_pairs.py
 
 lint: setup
 	$(VENV)/bin/ruff check src tests examples benchmarks

@@ -13,6 +13,7 @@ import warnings
 import numpy as np
 import pytest
 import torch
+from conftest import snapshot
 
 from colonnade.cli import main
 from colonnade.errors import DataError
@@ -52,13 +53,13 @@ def test_a_class_without_training_rows_is_refused_by_the_cli(tmp_path, capsys):
     ws = tmp_path / "ws"
     assert main(["new", str(tmp_path / "s.yaml"), "-o", str(ws)]) == 0
     np.savez(tmp_path / "d.npz", x=np.zeros((20, 4), np.float32), y=np.array([0, 2] * 10))
-    before = {p.name: p.read_bytes() for p in ws.iterdir()}
+    before = snapshot(ws)
     capsys.readouterr()
     assert main(["grow", str(ws), "--task", "t", "--train", str(tmp_path / "d.npz"),
                  "--quiet"]) != 0
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "class 1 of 3 has no training rows" in err[0]
-    assert {p.name: p.read_bytes() for p in ws.iterdir()} == before
+    assert snapshot(ws) == before
 
 
 def test_thin_classes_and_a_validation_gap_are_warned_about():

@@ -9,6 +9,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import yaml
+from conftest import snapshot
 
 from colonnade.cli import main
 from colonnade.costing.hardware import load_profile
@@ -96,11 +97,11 @@ def test_too_small_width_is_refused(tmp_path, capsys):
     g = np.random.default_rng(0)
     np.savez(tmp_path / "d.npz", x=g.normal(size=(30, 4)).astype(np.float32),
              y=np.arange(30) % 3)
-    before = {p.name: p.read_bytes() for p in ws.iterdir()}
+    before = snapshot(ws)
     capsys.readouterr()
     # 8 units at width 0.05 round to 0 (round(0.4) == 0): no units at all.
     assert main(["grow", str(ws), "--task", "a", "--train", str(tmp_path / "d.npz"),
                  "--width", "0.05", "--quiet"]) != 0
     line = _one_sentence(capsys.readouterr().err)
     assert "--width 0.05 leaves column[0] (8 units) with no units" in line
-    assert {p.name: p.read_bytes() for p in ws.iterdir()} == before
+    assert snapshot(ws) == before

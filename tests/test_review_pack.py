@@ -245,13 +245,14 @@ def test_diff_names_a_seal_superseded_with_its_reason(history, tmp_path, data):
 def test_diff_names_a_tensor_edited_by_hand(history, tmp_path, capsys):
     ws = tmp_path / "edited"
     shutil.copytree(history / "three", ws)
-    weights = load_file(ws / store.WEIGHTS)  # safetensors' own reader
+    weights_path = store.listed_files(ws)[store.WEIGHTS]
+    weights = load_file(weights_path)  # safetensors' own reader
     key = "columns.0.blocks.0.main.0.weight" if "columns.0.blocks.0.main.0.weight" in weights \
         else sorted(k for k in weights if k.startswith("columns.0.") and "weight" in k)[0]
     before = weights[key].copy()
     weights[key] = before.copy()
     weights[key].flat[3] += np.float32(0.5)
-    save_file(weights, ws / store.WEIGHTS)
+    save_file(weights, weights_path)
     expected = float(np.abs(weights[key].astype(np.float64) - before.astype(np.float64)).max())
     result = diff_workspaces(history / "three", ws)
     changed = {c["key"]: c for c in result["tensors"]["changed"]}

@@ -196,7 +196,7 @@ TAMPER = [
 
 @pytest.mark.parametrize("key,hit", TAMPER)
 def test_a_one_bit_flip_is_caught_and_named(ws, key, hit):
-    flip_bit(ws / store.WEIGHTS, key)  # the lowest bit of the first byte: the smallest change
+    flip_bit(store.listed_files(ws)[store.WEIGHTS], key)  # the lowest bit of the first byte: the smallest change
     report = check_workspace(ws)
     for t in report.tasks:
         if t.task in hit:
@@ -210,7 +210,7 @@ def test_a_one_bit_flip_is_caught_and_named(ws, key, hit):
 
 
 def test_a_flip_outside_every_sealed_closure_keeps_seals_exact_but_fails_the_record(ws):
-    flip_bit(ws / store.WEIGHTS, "columns.2.blocks.0.weighted.weight")  # unsealed perm2
+    flip_bit(store.listed_files(ws)[store.WEIGHTS], "columns.2.blocks.0.weighted.weight")  # unsealed perm2
     report = check_workspace(ws)
     assert {t.verdict for t in report.tasks} == {"exact"}
     # every byte of the workspace is bound to the record, sealed or not
@@ -257,7 +257,7 @@ def test_a_missing_probe_file_is_named_and_can_be_given(ws, tmp_path):
 
 
 def test_a_changed_stored_reference_is_named(ws):
-    flip_bit(ws / seal.SEALS_FILE, "perm1/v1", byte=3, bit=6)
+    flip_bit(store.listed_files(ws)[seal.SEALS_FILE], "perm1/v1", byte=3, bit=6)
     by = {t.task: t for t in check_workspace(ws).tasks}
     assert by["perm1"].verdict == "unverified"
     assert any("'perm1/v1'" in f and "reference" in f for f in by["perm1"].failures)
@@ -288,7 +288,7 @@ def test_check_from_the_command_line_prints_sentences_not_tracebacks(ws, capsys)
     from colonnade.cli import main
 
     assert main(["check", str(ws)]) == 0
-    flip_bit(ws / store.WEIGHTS, "adapters.c1_b1_from_c0.alpha")
+    flip_bit(store.listed_files(ws)[store.WEIGHTS], "adapters.c1_b1_from_c0.alpha")
     assert main(["check", str(ws)]) == 1
     out, err = capsys.readouterr()
     assert "Traceback" not in out + err

@@ -34,14 +34,21 @@ def test_manifest_lists_files_with_digests(tmp_path):
     _, ws = _ws(tmp_path)
     manifest = yaml.safe_load((ws / "manifest.yaml").read_text())
     # SHA-256 as defined by FIPS 180-4, computed by Python's hashlib.
-    digest = hashlib.sha256((ws / "weights.safetensors").read_bytes()).hexdigest()
+    stored = store.listed_files(ws)["weights.safetensors"]
+    digest = hashlib.sha256(stored.read_bytes()).hexdigest()
     assert manifest["files"]["weights.safetensors"]["sha256"] == digest
+    # The content address: data/<stem>.<sha256>.<ext>, so a name never holds two contents.
+    assert stored == ws / "data" / f"weights.{digest}.safetensors"
     assert [t["name"] for t in manifest["network"]["tasks"]] == ["t0", "t1"]
     assert manifest["history"][0]["step"] == "created"
-    assert sorted(os.listdir(ws)) == ["manifest.yaml", "weights.safetensors"]
+    # Older generations are collected once the new one is durable; no note is left behind.
+    assert sorted(p for p in os.listdir(ws) if not p.startswith(".")) == ["data",
+                                                                          "manifest.yaml"]
+    assert os.listdir(ws / "data") == [stored.name]
+    assert not (ws / ".pending").exists()
 
 
-def test_a_crash_before_the_manifest_rename_keeps_the_old_workspace(tmp_path, monkeypatch):
+def test_a_failure_at_the_manifest_rename_keeps_the_old_workspace(tmp_path, monkeypatch):
     net, ws = _ws(tmp_path)
     before = snapshot(ws)
     x = torch.randn(4, 8)
@@ -50,42 +57,58 @@ def test_a_crash_before_the_manifest_rename_keeps_the_old_workspace(tmp_path, mo
     net.freeze()
     real_replace = os.replace
 
-    def crash(src, dst):
+    def fail(src, dst):
         if str(dst).endswith("manifest.yaml"):
-            raise OSError("simulated power cut")
+            raise OSError("simulated failure")
         return real_replace(src, dst)
 
-    monkeypatch.setattr(os, "replace", crash)
+    monkeypatch.setattr(os, "replace", fail)
     with pytest.raises(OSError):
         store.save(net, ws)
     monkeypatch.setattr(os, "replace", real_replace)
-    # The new weights were already renamed into place; the old ones survive as .prev and
-    # the old manifest still names them, so loading finds the old workspace whole.
+    # The new data files were written under new names and removed again; the old
+    # manifest and every file it names were never touched.
+    assert snapshot(ws) == before
     back = store.load(ws)
     assert back.tasks == ["t0", "t1"]
     assert torch.equal(back(x, task="t1"), ref)
-    store.save(back, ws)  # the next save tidies up
-    assert snapshot(ws).keys() == before.keys()
 
 
-def test_a_crash_while_writing_temporaries_changes_nothing(tmp_path, monkeypatch):
-    net, ws = _ws(tmp_path)
+def test_a_network_loaded_before_another_commit_is_refused(tmp_path):
+    """A writer never commits on top of a generation it did not read."""
+    _, ws = _ws(tmp_path)
+    first, second = store.load(ws), store.load(ws)
+    first.add_column("a", 3, seed=1)
+    store.save(first, ws)
+    second.add_column("b", 3, seed=2)
     before = snapshot(ws)
-
-    def boom(*args, **kwargs):
-        raise OSError("disk full")
-
-    monkeypatch.setattr(os, "fsync", boom)
-    with pytest.raises(OSError):
-        store.save(net, ws)
+    with pytest.raises(WorkspaceError, match="changed since this network was loaded"):
+        store.save(second, ws)
     assert snapshot(ws) == before
+    assert store.load(ws).tasks == ["t0", "t1", "a"]
+
+
+def test_an_older_one_folder_workspace_is_read_and_moved_on_the_next_commit(tmp_path):
+    """Workspaces written before content addresses kept files at the top level."""
+    _, ws = _ws(tmp_path)
+    for name, path in store.listed_files(ws).items():
+        os.replace(path, ws / name)
+    (ws / "data").rmdir()
+    net = store.load(ws)  # read from the older places, digests checked as ever
+    assert net.tasks == ["t0", "t1"]
+    net.add_column("t2", 3, seed=3)
+    store.save(net, ws)
+    assert not (ws / "weights.safetensors").exists()
+    assert store.listed_files(ws)["weights.safetensors"].parent == ws / "data"
+    assert store.load(ws).tasks == ["t0", "t1", "t2"]
 
 
 def test_changed_weights_are_refused_when_strict(tmp_path):
     _, ws = _ws(tmp_path)
-    data = bytearray((ws / "weights.safetensors").read_bytes())
+    path = store.listed_files(ws)["weights.safetensors"]
+    data = bytearray(path.read_bytes())
     data[-1] ^= 1
-    (ws / "weights.safetensors").write_bytes(bytes(data))
+    path.write_bytes(bytes(data))
     with pytest.raises(WorkspaceError, match="does not match the manifest"):
         store.load(ws)
     net = store.load(ws, strict=False)
@@ -105,7 +128,7 @@ def test_manifest_with_python_tags_never_executes(tmp_path):
 
 
 @pytest.mark.parametrize("damage,message", [
-    (lambda ws: (ws / "weights.safetensors").unlink(), "missing"),
+    (lambda ws: store.listed_files(ws)["weights.safetensors"].unlink(), "missing"),
     (lambda ws: (ws / "manifest.yaml").write_text("format: other\n"), "not a colonnade manifest"),
     (lambda ws: (ws / "manifest.yaml").unlink(), "not a workspace"),
 ])
@@ -121,11 +144,12 @@ def test_weights_that_do_not_fit_the_network(tmp_path):
 
     _, ws = _ws(tmp_path)
     data = st_save({"columns.0.blocks.0.weighted.weight": torch.zeros(6, 8)})
-    (ws / "weights.safetensors").write_bytes(data)
-    manifest = yaml.safe_load((ws / "manifest.yaml").read_text())
     import hashlib
 
-    manifest["files"]["weights.safetensors"]["sha256"] = hashlib.sha256(data).hexdigest()
+    digest = hashlib.sha256(data).hexdigest()
+    (ws / "data" / f"weights.{digest}.safetensors").write_bytes(data)
+    manifest = yaml.safe_load((ws / "manifest.yaml").read_text())
+    manifest["files"]["weights.safetensors"].update(sha256=digest, bytes=len(data))
     (ws / "manifest.yaml").write_text(yaml.safe_dump(manifest))
     with pytest.raises(WorkspaceError, match="the record does not verify"):
         store.load(ws)  # the record binds the file digests
@@ -148,3 +172,46 @@ def test_architecture_is_rebuilt_from_the_manifest(tmp_path):
     assert isinstance(back, ProgressiveNet) and not back.training
     assert not any(p.requires_grad for p in back.parameters())
     assert parse_spec(SPEC) == back.spec
+
+
+@pytest.mark.parametrize("at_call", [1, 6])  # the first fsync of the commit; one after the switch
+def test_ctrl_c_during_a_commit_finishes_it_and_says_so(tmp_path, monkeypatch, at_call):
+    """SIGINT is held while the commit runs: the commit completes, and the interrupt comes
+    back as InterruptedAfterCommit, so the user is told the change was committed."""
+    import signal
+
+    from colonnade.errors import InterruptedAfterCommit
+
+    net, ws = _ws(tmp_path)
+    net.add_column("t2", 3, seed=7)
+    net.freeze()
+    real_fsync, calls = os.fsync, [0]
+
+    def fsync_then_interrupt(fd):
+        calls[0] += 1
+        if calls[0] == at_call:
+            os.kill(os.getpid(), signal.SIGINT)  # a real signal, as Ctrl-C sends it
+        return real_fsync(fd)
+
+    monkeypatch.setattr(os, "fsync", fsync_then_interrupt)
+    with pytest.raises(InterruptedAfterCommit):
+        store.save(net, ws)
+    monkeypatch.setattr(os, "fsync", real_fsync)
+    assert calls[0] > at_call  # the commit went on after the signal
+    assert store.load(ws).tasks == ["t0", "t1", "t2"]
+    assert not (ws / ".pending").exists()
+    assert signal.getsignal(signal.SIGINT) is signal.default_int_handler
+
+
+@pytest.mark.parametrize("name", ["../../outside.safetensors", "/etc/passwd",
+                                  "data/../../x.safetensors", ".writer.lock"])
+def test_a_listed_name_that_leaves_the_workspace_is_refused(tmp_path, name):
+    """Invariant 12: paths named by a workspace resolve inside it (hand-edited manifest)."""
+    _, ws = _ws(tmp_path)
+    manifest = yaml.safe_load((ws / "manifest.yaml").read_text())
+    manifest["files"][name] = dict(manifest["files"]["weights.safetensors"])
+    (ws / "manifest.yaml").write_text(yaml.safe_dump(manifest, sort_keys=False))
+    with pytest.raises(WorkspaceError, match="record does not verify"):
+        store.load(ws)  # the record binds the files section first
+    with pytest.raises(WorkspaceError, match="not a plain name inside the workspace"):
+        store.load(ws, strict=False)  # as check reads it: still never outside

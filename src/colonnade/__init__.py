@@ -14,6 +14,7 @@ import importlib
 
 from ._version import __version__
 from .errors import (
+    BusyError,
     ColonnadeError,
     DataError,
     SealedError,
@@ -70,10 +71,14 @@ _PUBLIC: dict[str, tuple[str, str | None]] = {
     "start_record": ("colonnade.app.record", "start_record"),
     "match_data_file": ("colonnade.app.record", "match_data_file"),
     "record": ("colonnade.evidence.record", None),
+    # the store: one writer at a time, recovery of an interrupted write
+    "lock_wait": ("colonnade.app.transaction", "lock_wait"),
+    "recover_workspace": ("colonnade.app.transaction", "recover"),
+    "listed_files": ("colonnade.files.store", "listed_files"),
 }
 
 __all__ = ["__version__", "ColonnadeError", "SpecError", "DataError", "WorkspaceError",
-           "SealedError", "UsageError", *_PUBLIC]
+           "SealedError", "UsageError", "BusyError", *_PUBLIC]
 
 
 def __getattr__(name: str) -> object:

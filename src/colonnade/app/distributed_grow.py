@@ -36,7 +36,8 @@ import torch.multiprocessing as mp
 
 from ..errors import UsageError
 from ..evidence.record import Attribution, unchain
-from ..files.store import load, save
+from ..files.lock import writer_lock
+from ..files.store import LOADED_HEAD, load, save
 from ..model.device import resolve_device
 from ..model.schema import Spec
 from ..training.checks import check_training_data
@@ -50,6 +51,7 @@ from ..training.distributed import (
     shard_rows,
 )
 from ..training.growth import grow
+from .transaction import tell_waiting, wait_seconds
 
 __all__ = ["DataOptions", "growth_data", "GrowRequest", "grow_distributed", "run_rank",
            "run_torchrun_rank", "STAGING_PREFIX", "remove_stale_staging"]
@@ -254,6 +256,13 @@ def grow_distributed(request: GrowRequest, nproc: int, progress: bool = True,
             torch.cuda.device_count() < nproc):
         raise UsageError(f"--nproc {nproc} with --device cuda needs {nproc} GPUs, this "
                          f"machine has {torch.cuda.device_count()}")
+    # held from the first read to the commit
+    with writer_lock(request.folder, "grow", wait_seconds(), tell_waiting):
+        return _grow_locked(request, nproc, progress, who)
+
+
+def _grow_locked(request: GrowRequest, nproc: int, progress: bool,
+                 who: Attribution | None) -> dict[str, Any]:
     before = load(request.folder)  # validates the workspace and names before any spawn
     remove_stale_staging(request.folder)  # left by a run whose parent was killed
     if request.task in before.task_info:
@@ -280,6 +289,7 @@ def grow_distributed(request: GrowRequest, nproc: int, progress: bool = True,
         # The staging copy chained the new entries; chain them again in the workspace.
         added = net.meta["history"][len(before.meta["history"]):]
         unchain(added)
+        net.meta[LOADED_HEAD] = before.meta[LOADED_HEAD]  # grown from that generation
         save(net, request.folder, who)
     finally:
         shutil.rmtree(tmp, ignore_errors=True)

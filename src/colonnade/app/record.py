@@ -20,9 +20,10 @@ from ..evidence.integrity import RecordReport, verify_manifest
 from ..evidence.provenance import match_data, sample_fingerprint
 from ..evidence.record import Finding, RecordEntry, chain_found, typed_history, verify_chain
 from ..evidence.signing import key_id, load_signer, load_trusted, new_key_pems
+from ..files.limits import sha256_file
+from ..files.lock import reader_lock
 from ..files.manifest import MANIFEST, manifest_text, read_manifest
-from ..files.store import save
-from ..model.digest import file_digest
+from ..files.store import listed_path, save
 from ..training.data import load_for_spec
 from ..training.sources import source_digest
 from .transaction import attribution, read_workspace
@@ -30,14 +31,41 @@ from .transaction import attribution, read_workspace
 __all__ = ["verify_record", "history", "new_key", "match_data_file", "start_record"]
 
 
-def _digest_reader(folder: Path):
-    """A listed file's SHA-256, or None when it is missing or not a plain file inside."""
+def _digest_reader(folder: Path, files: Any):
+    """A listed file's SHA-256, or None when it is missing or not a plain file inside.
+
+    Reads at most the size the manifest recorded plus one byte, so a file that grew costs
+    no more than the file it should be (its digest then differs anyway).
+    """
     def digest_of(name: str) -> str | None:
-        if not name or "/" in name or "\\" in name or name.startswith("."):
+        entry = files.get(name) if isinstance(files, dict) else None
+        try:
+            path = listed_path(folder, name, entry)
+        except WorkspaceError:
             return None  # the store never writes such names; treat them as missing
-        path = folder / name
-        return file_digest(path) if path.is_file() and not path.is_symlink() else None
+        size = entry.get("bytes") if isinstance(entry, dict) else None
+        if not path.is_file() or path.is_symlink():
+            return None
+        try:
+            return sha256_file(path, size + 1 if isinstance(size, int) and size >= 0
+                               else None)[0]
+        except (OSError, WorkspaceError):
+            return None
     return digest_of
+
+
+def _one_manifest(folder: Path) -> tuple[dict[str, Any], bytes]:
+    """The parsed manifest and the very bytes it was parsed from, though a writer may
+    switch the manifest meanwhile: read until the bytes before and after the parse agree
+    (every commit moves the record head, so a manifest's bytes never come back)."""
+    path = folder / MANIFEST
+    for _ in range(20):
+        before = path.read_bytes()
+        manifest = read_manifest(folder)
+        if path.read_bytes() == before:
+            return manifest, before
+    raise WorkspaceError(f"{folder}: its manifest changed 20 times while it was read; check "
+                         f"it when no writer is busy with it")
 
 
 def verify_record(folder: str | Path, trust: Iterable[str | Path] | None = None,
@@ -55,13 +83,15 @@ def verify_record(folder: str | Path, trust: Iterable[str | Path] | None = None,
     path = folder / MANIFEST
     if not path.is_file():
         raise WorkspaceError(f"{folder}: not a workspace (no {MANIFEST})")
-    try:
-        manifest = read_manifest(folder)
-    except WorkspaceError as exc:
-        return RecordReport(str(folder), 0, None, [Finding(str(exc), file=MANIFEST)],
-                            trusted=[k.key_id for k in trusted])
-    return verify_manifest(manifest, path.read_bytes(), manifest_text(manifest),
-                           _digest_reader(folder), trusted, str(folder), MANIFEST)
+    with reader_lock(folder):  # the manifest and the files of one generation
+        try:
+            manifest, text = _one_manifest(folder)
+        except WorkspaceError as exc:
+            return RecordReport(str(folder), 0, None, [Finding(str(exc), file=MANIFEST)],
+                                trusted=[k.key_id for k in trusted])
+        return verify_manifest(manifest, text, manifest_text(manifest),
+                               _digest_reader(folder, manifest.get("files")), trusted,
+                               str(folder), MANIFEST)
 
 
 def start_record(folder: str | Path, reason: str, by: str | None = None,

@@ -17,21 +17,62 @@ from __future__ import annotations
 import getpass
 import os
 import sys
+import warnings
 from collections.abc import Iterator
-from contextlib import contextmanager
+from contextlib import ExitStack, contextmanager
+from contextvars import ContextVar
 from pathlib import Path
 
 from ..errors import UsageError
 from ..evidence.record import Attribution, describe_entry, signature_required_from
 from ..evidence.signing import Signer, load_signer
+from ..files.commit import read_pending
+from ..files.lock import DEFAULT_WAIT, writer_lock
 from ..files.store import load, save
 from ..model.network import ProgressiveNet
 
 __all__ = ["Transaction", "read_workspace", "writing", "attribution", "signer_from",
-           "SIGN_KEY_ENV", "PASSPHRASE_ENV"]
+           "lock_wait", "wait_seconds", "tell_waiting", "recover", "SIGN_KEY_ENV",
+           "PASSPHRASE_ENV", "WAIT_ENV"]
 
 SIGN_KEY_ENV = "COLONNADE_SIGN_KEY"
 PASSPHRASE_ENV = "COLONNADE_KEY_PASSPHRASE"
+WAIT_ENV = "COLONNADE_WAIT"
+_wait: ContextVar[float | None] = ContextVar("colonnade_lock_wait", default=None)
+
+
+@contextmanager
+def lock_wait(seconds: float | None) -> Iterator[None]:
+    """How long writing verbs in this block wait for another writer (``--wait``)."""
+    if seconds is not None and not seconds >= 0:
+        raise UsageError("--wait needs a number of seconds, 0 or more")
+    token = _wait.set(seconds)
+    try:
+        yield
+    finally:
+        _wait.reset(token)
+
+
+def wait_seconds() -> float:
+    """Seconds a writer waits for the lock: ``lock_wait``, else $COLONNADE_WAIT, else 5."""
+    chosen = _wait.get()
+    if chosen is not None:
+        return chosen
+    text = os.environ.get(WAIT_ENV)
+    if text:
+        try:
+            value = float(text)
+        except ValueError:
+            raise UsageError(f"{WAIT_ENV}={text!r} is not a number of seconds") from None
+        if value >= 0:
+            return value
+        raise UsageError(f"{WAIT_ENV} must be 0 or more seconds")
+    return DEFAULT_WAIT
+
+
+def tell_waiting(message: str) -> None:
+    """Say, once, that a writer is waiting for the lock (printed by the CLI as one line)."""
+    warnings.warn(message, stacklevel=2)
 
 
 def _passphrase(path: str | Path) -> bytes | None:
@@ -71,10 +112,32 @@ class Transaction:
                  reason: str | None = None, sign: str | Path | None = None) -> None:
         self.folder = Path(folder)
         self.verb = verb
-        self.who = attribution(verb, by, reason, sign)
-        self.net: ProgressiveNet = load(folder)
-        self._require_signature()
+        self.who = attribution(verb, by, reason, sign)  # a wrong key fails before the lock
+        self._locked = ExitStack()
+        self.net: ProgressiveNet | None = None
         self._discarded = False
+
+    def open(self) -> Transaction:
+        """Take the writer lock, then read the workspace: nothing rests on a stale read."""
+        if not self.folder.is_dir():
+            load(self.folder)  # says in one sentence what is wrong with the path
+        self._locked.enter_context(writer_lock(self.folder, self.verb, wait_seconds(),
+                                               tell_waiting))
+        try:
+            self.net = load(self.folder)
+            self._require_signature()
+        except BaseException:
+            self._locked.close()
+            raise
+        return self
+
+    def close(self) -> None:
+        self._locked.close()
+
+    @property
+    def interrupted_write(self) -> bool:
+        """Whether an interrupted commit waits to be recovered by this transaction."""
+        return read_pending(self.folder) is not None
 
     @property
     def reason(self) -> str | None:
@@ -93,7 +156,7 @@ class Transaction:
         self._discarded = True
 
     def commit(self) -> None:
-        if not self._discarded:
+        if not self._discarded and self.net is not None:
             save(self.net, self.folder, self.who)
 
 
@@ -101,9 +164,24 @@ class Transaction:
 def writing(folder: str | Path, verb: str, by: str | None = None, reason: str | None = None,
             sign: str | Path | None = None) -> Iterator[Transaction]:
     """Open ``folder`` for ``verb``; commit when the block ends without an exception."""
-    tx = Transaction(folder, verb, by, reason, sign)
-    yield tx
-    tx.commit()
+    tx = Transaction(folder, verb, by, reason, sign).open()
+    try:
+        yield tx
+        tx.commit()
+    finally:
+        tx.close()
+
+
+def recover(folder: str | Path, by: str | None = None, reason: str | None = None,
+            sign: str | Path | None = None) -> str | None:
+    """``colonnade recover WS``: finish or undo an interrupted write now, not at the next
+    one. Returns what was found (also recorded in the history), or None if nothing was."""
+    with writing(folder, "recover", by, reason, sign) as tx:
+        if not tx.interrupted_write:
+            tx.discard()
+            return None
+    found = tx.net.meta["history"][-1].get("found") if tx.net is not None else None
+    return "; ".join(found) if isinstance(found, list) else "an interrupted write"
 
 
 def read_workspace(folder: str | Path, strict: bool = True) -> ProgressiveNet:

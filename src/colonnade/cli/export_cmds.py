@@ -7,6 +7,7 @@ from typing import Any
 
 from .argtypes import non_negative_float
 from .output import print_json, table
+from .record_options import add_wait_option
 
 __all__ = ["add_parsers"]
 
@@ -75,3 +76,4 @@ def add_parsers(verb: Any) -> None:
     p.add_argument("--accept-drop", type=non_negative_float, default=1.0, metavar="POINTS",
                    help="with --int8: accuracy points a sealed task may lose (default 1.0)")
     p.add_argument("--json", action="store_true")
+    add_wait_option(p)

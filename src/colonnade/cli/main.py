@@ -50,7 +50,12 @@ def main(argv: Sequence[str] | None = None) -> int:
         args = parser.parse_args(argv)
         with warnings.catch_warnings():
             warnings.showwarning = _one_line_warning
-            return args.run(args)
+            if getattr(args, "wait", None) is None:
+                return args.run(args)
+            from ..app.transaction import lock_wait  # only verbs that write take --wait
+
+            with lock_wait(args.wait):
+                return args.run(args)
     except ColonnadeError as exc:
         print(f"colonnade: error: {exc}", file=sys.stderr)
         return exc.exit_code

@@ -5,7 +5,17 @@ from __future__ import annotations
 import argparse
 from typing import Any
 
-__all__ = ["add_record_options", "record_kwargs"]
+from .argtypes import non_negative_float
+
+__all__ = ["add_record_options", "add_wait_option", "record_kwargs"]
+
+
+def add_wait_option(p: argparse.ArgumentParser) -> None:
+    """``--wait SECONDS``: how long to wait while another process writes the workspace."""
+    p.add_argument("--wait", type=non_negative_float, metavar="SECONDS",
+                   help="if another colonnade process is writing this workspace, wait up to "
+                        "this long for it (default 5, or COLONNADE_WAIT), then stop with exit "
+                        "code 3")
 
 
 def add_record_options(p: argparse.ArgumentParser, reason: str | None = None,
@@ -18,6 +28,7 @@ def add_record_options(p: argparse.ArgumentParser, reason: str | None = None,
     group.add_argument("--sign", metavar="KEY",
                        help="sign the new history entries with this private key "
                             "(default: the key file in COLONNADE_SIGN_KEY, if set)")
+    add_wait_option(p)
 
 
 def record_kwargs(args: argparse.Namespace) -> dict[str, Any]:

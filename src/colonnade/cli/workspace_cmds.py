@@ -152,6 +152,17 @@ def _print_transfer(rec: dict[str, Any]) -> None:
     print(f"ACC {acc}   BWT {metric(rec['BWT'])}{sealed}   FWT {metric(rec['FWT'])}")
 
 
+def _recover(args: argparse.Namespace) -> int:
+    from ..app.transaction import recover
+
+    found = recover(args.workspace, **record_kwargs(args))
+    if found is None:
+        print(f"{args.workspace}: no interrupted write to recover; nothing changed")
+    else:
+        print(f"{args.workspace}: recovered ({found}); recorded in the history")
+    return 0
+
+
 def add_parsers(verb: Any) -> None:
     """Add this group's verbs through ``verb(name, handler, help)``."""
     p = verb("new", _new, "create a workspace from a spec")
@@ -199,6 +210,11 @@ def add_parsers(verb: Any) -> None:
                         "spill to a temporary file (default: the spec's train.cache_mb)")
     p.add_argument("--no-cache", action="store_true",
                    help="recompute frozen columns every batch instead of caching them")
+    add_record_options(p)
+
+    p = verb("recover", _recover, "finish or undo a write that was interrupted (a crash, a "
+             "kill) now and record it; the next writing verb would do it anyway")
+    p.add_argument("workspace")
     add_record_options(p)
 
     p = verb("show", _show, "print tasks, columns, heads, adapters and parameter counts")

@@ -1,17 +1,19 @@
-"""Workspace read and write: ``manifest.yaml`` plus safetensors files, atomically.
+"""Workspace read and write: ``manifest.yaml`` plus safetensors files, under the lock.
 
-The manifest is the commit point. Data files are written first under temporary names,
-the files they replace are kept as ``NAME.prev`` hard links, the data files are renamed
-into place, and only then the manifest, which records each file's SHA-256. A crash at
-any point leaves either the old manifest with its old files (found again through
-``.prev`` if they were already replaced) or the new ones, never a mix. Loading reads
-YAML with the safe loader and tensors with safetensors: no code runs.
+``save`` commits a new generation (``files.commit``: content-addressed data files behind
+one atomic pointer) while holding the writer lock (``files.lock``), and refuses to write
+a network loaded from a generation that is no longer current, so nothing it commits rests
+on a stale read. ``load`` reads the manifest and the files it names under the reader
+lock, so a reader never sees a generation half collected. Loading reads YAML with the
+safe loader and tensors with safetensors: no code runs.
 """
 
 from __future__ import annotations
 
 import hashlib
 import os
+import shutil
+import socket
 import tempfile
 from pathlib import Path
 from typing import Any
@@ -30,12 +32,16 @@ from ..model.guard import verify_unchanged
 from ..model.network import ProgressiveNet
 from ..model.schema import Spec
 from ..model.spec import load_spec, parse_spec
+from .commit import confined_stored, pending_recovery, write_generation
+from .lock import reader_lock, writer_lock
 from .manifest import FORMAT, MANIFEST, RESERVED, VERSION, WEIGHTS, manifest_text, read_manifest
 from .summary import network_summary
 
-__all__ = ["create", "save", "load", "atomic_write", "read_manifest", "MANIFEST", "WEIGHTS"]
+__all__ = ["create", "save", "load", "atomic_write", "read_manifest", "listed_files",
+           "listed_path", "LOADED_HEAD", "MANIFEST", "WEIGHTS"]
 
-
+# The record head a network was loaded at; ``save`` refuses when the workspace moved on.
+LOADED_HEAD = "_loaded_head"
 
 _UMASK = os.umask(0)
 os.umask(_UMASK)
@@ -69,7 +75,11 @@ def _write_temp(folder: Path, name: str, data: bytes) -> Path:
 
 
 def atomic_write(path: str | Path, data: bytes | str) -> None:
-    """Write a file so that a crash leaves either the old content or the new, never half."""
+    """Write a file so that a crash leaves either the old content or the new, never half.
+
+    For files outside workspaces (exports, reports, diagrams); workspaces are committed by
+    ``save``.
+    """
     path = Path(path)
     if isinstance(data, str):
         data = data.encode("utf-8")
@@ -86,33 +96,29 @@ def _sha256(data: bytes) -> str:
     return hashlib.sha256(data).hexdigest()
 
 
-def _commit(folder: Path, files: dict[str, bytes], manifest: dict[str, Any]) -> None:
-    """Write data files, then the manifest that names them; see the module docstring."""
-    for stale in folder.glob(".*.tmp"):  # left by a crash during an earlier write
-        stale.unlink(missing_ok=True)
-    temps: dict[str, Path] = {}
-    try:
-        for name, data in files.items():
-            temps[name] = _write_temp(folder, name, data)
-        text = manifest_text(manifest)
-        manifest_tmp = _write_temp(folder, MANIFEST, text.encode("utf-8"))
-        temps[MANIFEST] = manifest_tmp
-        for name in files:
-            target, prev = folder / name, folder / (name + ".prev")
-            prev.unlink(missing_ok=True)
-            if target.exists():
-                os.link(target, prev)
-        for name in files:
-            os.replace(temps[name], folder / name)
-            del temps[name]
-        os.replace(temps[MANIFEST], folder / MANIFEST)
-        del temps[MANIFEST]
-        _fsync_dir(folder)
-    finally:
-        for tmp in temps.values():
-            tmp.unlink(missing_ok=True)
-    for name in files:
-        (folder / (name + ".prev")).unlink(missing_ok=True)
+def _head(manifest: dict[str, Any] | None) -> str | None:
+    record = (manifest or {}).get("record")
+    return record.get("head") if isinstance(record, dict) else None
+
+
+def _chained(manifest: dict[str, Any] | None) -> set[str]:
+    history = (manifest or {}).get("history")
+    return {e["entry_sha256"] for e in history if isinstance(e, dict)
+            and isinstance(e.get("entry_sha256"), str)} if isinstance(history, list) else set()
+
+
+def listed_path(folder: str | Path, name: str, entry: Any) -> Path:
+    """Where the file a manifest entry names lies: its content address (``data/``), or
+    the older top-level place; WorkspaceError if the entry names no plain file inside."""
+    stored, legacy = confined_stored(Path(folder), name, entry)
+    return stored if stored.is_file() or not legacy.is_file() else legacy
+
+
+def listed_files(folder: str | Path) -> dict[str, Path]:
+    """Where each file the manifest lists lies now, by its name in the manifest."""
+    folder = Path(folder)
+    return {name: listed_path(folder, name, entry)
+            for name, entry in (read_manifest(folder).get("files") or {}).items()}
 
 
 def _tensor_files(net: ProgressiveNet) -> dict[str, bytes]:
@@ -124,12 +130,18 @@ def _tensor_files(net: ProgressiveNet) -> dict[str, bytes]:
     return files
 
 
-def save(net: ProgressiveNet, folder: str | Path, who: Attribution | None = None) -> None:
-    """Write the whole network and its records to a workspace folder, atomically.
+def save(net: ProgressiveNet, folder: str | Path, who: Attribution | None = None,
+         wait: float | None = None) -> None:
+    """Write the whole network and its records to a workspace folder as a new generation.
 
-    The history entries added since the last commit are chained, attributed to ``who``
+    Holds the writer lock (waiting up to ``wait`` seconds, else BusyError, exit 3) and
+    refuses a network loaded from a generation that is no longer the current one (a
+    network built in memory may only replace a workspace that holds nothing but its
+    creation). The
+    history entries added since the last commit are chained, attributed to ``who``
     (default: the login user and host) and signed if ``who.signer`` is set
-    (``evidence.record.extend``): every commit extends the record.
+    (``evidence.record.extend``): every commit extends the record. An interrupted commit
+    found on the way (``.pending``) is recorded as a ``recovered`` entry first.
     """
 
     folder = Path(folder)
@@ -137,7 +149,51 @@ def save(net: ProgressiveNet, folder: str | Path, who: Attribution | None = None
         raise WorkspaceError(f"{folder}: no such workspace folder; create one with "
                              f"'colonnade new SPEC -o {folder}'")
     verify_unchanged(net)  # a sealed closure that moved is never written
+    who = who or Attribution()
     files = _tensor_files(net)
+    with writer_lock(folder, who.verb or "save", wait):
+        current = read_manifest(folder) if (folder / MANIFEST).exists() else None
+        if current is not None and net.meta.get(LOADED_HEAD) != _head(current) \
+                and not (LOADED_HEAD not in net.meta and _only_created(current)):
+            raise WorkspaceError(f"{folder}: changed since this network was loaded (another "
+                                 f"process committed to it); load it again and repeat the "
+                                 f"change, so nothing committed in between is lost")
+        manifest = _manifest_of(net, files)
+        recovered = pending_recovery(folder, _chained(current))
+        if recovered is not None:
+            history = manifest.setdefault("history", [])
+            history.insert(_chained_count(history), recovered)
+        extend(manifest, who)
+        note = {"verb": who.verb, "by": who.author, "pid": os.getpid(),
+                "host": socket.gethostname(), "time": now(), "from_head": _head(current),
+                "to_head": _head(manifest)}
+        retired = set((current or {}).get("files") or {})
+        try:
+            write_generation(folder, files, manifest_text(manifest), note, retired)
+        finally:
+            net.meta[LOADED_HEAD] = _head(read_manifest(folder))
+
+
+def _only_created(manifest: dict[str, Any]) -> bool:
+    """A workspace that holds nothing yet but its creation: a network built in memory
+    (never loaded from a workspace) may take its place, as ``create`` then ``save`` do."""
+    history = manifest.get("history")
+    return (isinstance(history, list) and len(history) == 1
+            and isinstance(history[0], dict) and history[0].get("step") == "created"
+            and not (manifest.get("network") or {}).get("tasks"))
+
+
+def _chained_count(history: list[Any]) -> int:
+    """How many entries at the start of ``history`` are already chained."""
+    count = 0
+    for entry in history:
+        if not (isinstance(entry, dict) and "entry_sha256" in entry):
+            break
+        count += 1
+    return count
+
+
+def _manifest_of(net: ProgressiveNet, files: dict[str, bytes]) -> dict[str, Any]:
     manifest: dict[str, Any] = {
         "format": FORMAT,
         "version": VERSION,
@@ -152,8 +208,7 @@ def save(net: ProgressiveNet, folder: str | Path, who: Attribution | None = None
             manifest[key] = value
     manifest["files"] = {name: {"sha256": _sha256(data), "bytes": len(data)}
                          for name, data in files.items()}
-    extend(manifest, who or Attribution())
-    _commit(folder, files, manifest)
+    return manifest
 
 
 def create(spec_or_path: Any, folder: str | Path, net: ProgressiveNet | None = None,
@@ -180,31 +235,60 @@ def create(spec_or_path: Any, folder: str | Path, net: ProgressiveNet | None = N
         folder.mkdir(parents=True, exist_ok=True)
         save(net, folder, who or Attribution(verb="new"))
     except BaseException:
-        if made:
-            for p in folder.iterdir():
-                p.unlink()
-            folder.rmdir()
+        if made and not (folder / MANIFEST).exists():
+            shutil.rmtree(folder, ignore_errors=True)
         raise
     return net
 
 
+def _locate(folder: Path, name: str, entry: Any, strict: bool) -> Path:
+    """The file a manifest entry names: its content address, else the older top-level
+    place; for ``check`` (not strict) also the one stored file of that name, if the
+    entry's digest was edited."""
+    if not strict and not (isinstance(entry, dict) and isinstance(entry.get("sha256"), str)
+                           and len(entry["sha256"]) == 64):
+        entry = {"sha256": "0" * 64}
+    stored, legacy = confined_stored(folder, name, entry)
+    if stored.is_file() or legacy.is_file():
+        return stored if stored.is_file() else legacy
+    if not strict:
+        stem, dot, ext = name.partition(".")
+        others = sorted(stored.parent.glob(f"{stem}.*{dot}{ext}")) if stored.parent.is_dir() \
+            else []
+        if len(others) == 1:
+            return others[0]
+    return stored
+
+
 def _read_file(folder: Path, name: str, entry: Any, strict: bool) -> tuple[bytes, bool]:
-    """A listed file's bytes and whether they match the manifest's digest."""
+    """A listed file's bytes and whether they match the manifest's digest.
+
+    The size the manifest recorded is compared before anything is read, so a file that
+    grew (a sparse file claiming terabytes) is refused without allocating it.
+    """
     want = entry.get("sha256") if isinstance(entry, dict) else None
-    path = folder / name
-    for candidate in (path, folder / (name + ".prev")):
-        if candidate.is_file():
-            data = candidate.read_bytes()
-            if _sha256(data) == want:
-                return data, True
+    size = entry.get("bytes") if isinstance(entry, dict) else None
+    path = _locate(folder, name, entry, strict)
     if not path.is_file():
-        raise WorkspaceError(f"{path}: missing; the workspace is incomplete, restore it "
+        raise WorkspaceError(f"{folder / name}: missing; the workspace is incomplete, "
+                             f"restore it from a backup")
+    actual = path.stat().st_size
+    changed = (f"{path}: its SHA-256 does not match the manifest, so it was changed outside "
+               f"colonnade; run 'colonnade check' to see what moved")
+    if isinstance(size, int) and actual != size:
+        if strict or actual > 2 * size + (64 << 20):
+            raise WorkspaceError(changed if strict else
+                                 f"{path}: holds {actual} bytes where the manifest records "
+                                 f"{size}; restore it from a backup")
+    elif strict and not isinstance(size, int):
+        raise WorkspaceError(f"{folder / MANIFEST}: records no size for {name}; restore it "
                              f"from a backup")
-    if strict:
-        raise WorkspaceError(f"{path}: its SHA-256 does not match the manifest, so it was "
-                             f"changed outside colonnade; run 'colonnade check' to see what "
-                             f"moved")
-    return path.read_bytes(), False
+    with open(path, "rb") as handle:
+        data = handle.read(actual + 1)
+    ok = _sha256(data) == want
+    if strict and not ok:
+        raise WorkspaceError(changed)
+    return data, ok
 
 
 def load(folder: str | Path, strict: bool = True, module: Any = None) -> ProgressiveNet:
@@ -215,34 +299,39 @@ def load(folder: str | Path, strict: bool = True, module: Any = None) -> Progres
     ``module``: the user's own ``nn.Module`` when column 0 was adopted from Python code
     (its weights are then loaded from the workspace into it).
     A workspace whose record does not verify is refused when ``strict`` (the first
-    finding in one sentence) and loaded otherwise, for ``check``.
+    finding in one sentence) and loaded otherwise, for ``check``. The manifest and its
+    files are read under the reader lock: one generation, whole.
     """
     folder = Path(folder)
-    manifest = read_manifest(folder)
-    if strict:
-        findings = verify_chain(manifest)
-        if findings:
-            raise WorkspaceError(f"{folder}: the record does not verify: "
-                                 f"{findings[0].message}; run 'colonnade check {folder}' "
-                                 f"and restore the workspace from a copy you trust")
-    try:
-        spec = parse_spec(manifest.get("spec"))
-    except ColonnadeError as exc:
-        raise WorkspaceError(f"{folder / MANIFEST}: its spec is invalid ({exc})") from None
-    files = manifest.get("files") or {}
-    if WEIGHTS not in files:
-        raise WorkspaceError(f"{folder / MANIFEST}: lists no {WEIGHTS}; restore it from a "
-                             f"backup")
-    mismatched = []
+    with reader_lock(folder):
+        manifest = read_manifest(folder)
+        if strict:
+            findings = verify_chain(manifest)
+            if findings:
+                raise WorkspaceError(f"{folder}: the record does not verify: "
+                                     f"{findings[0].message}; run 'colonnade check {folder}' "
+                                     f"and restore the workspace from a copy you trust")
+        try:
+            spec = parse_spec(manifest.get("spec"))
+        except ColonnadeError as exc:
+            raise WorkspaceError(f"{folder / MANIFEST}: its spec is invalid ({exc})") from None
+        files = manifest.get("files") or {}
+        if not isinstance(files, dict) or WEIGHTS not in files:
+            raise WorkspaceError(f"{folder / MANIFEST}: lists no {WEIGHTS}; restore it from "
+                                 f"a backup")
+        mismatched = []
+        raw: dict[str, bytes] = {}
+        for name, entry in files.items():
+            if not strict and not name.endswith(".safetensors") \
+                    and not _locate(folder, name, entry, strict).is_file():
+                mismatched.append(name)  # a kept file (a probe) gone: check names it
+                continue
+            raw[name], ok = _read_file(folder, name, entry, strict)
+            if not ok:
+                mismatched.append(name)
     tensors: dict[str, dict[str, torch.Tensor]] = {}
     kept: dict[str, bytes] = {}
-    for name, entry in files.items():
-        if not strict and not name.endswith(".safetensors") and not (folder / name).is_file():
-            mismatched.append(name)  # a kept file (a probe) gone: check names it, loads the rest
-            continue
-        data, ok = _read_file(folder, name, entry, strict)
-        if not ok:
-            mismatched.append(name)
+    for name, data in raw.items():
         if not name.endswith(".safetensors"):
             kept[name] = data
             continue
@@ -251,6 +340,7 @@ def load(folder: str | Path, strict: bool = True, module: Any = None) -> Progres
         except (SafetensorError, ValueError, RuntimeError):
             raise WorkspaceError(f"{folder / name}: not a readable safetensors file; restore "
                                  f"it from a backup") from None
+    del raw
     arch = manifest.get("network") or {}
     adopted = None
     if isinstance(arch, dict) and "adopted" in arch:
@@ -273,5 +363,6 @@ def load(folder: str | Path, strict: bool = True, module: Any = None) -> Progres
     net.meta.setdefault("records", {})
     if mismatched:
         net.meta["_mismatched"] = mismatched
+    net.meta[LOADED_HEAD] = _head(manifest)
     net.freeze()
     return net

@@ -1,0 +1,153 @@
+"""One writer at a time, and readers that never see a half-collected generation.
+
+Two advisory locks (``flock``) on files inside the workspace:
+
+- ``.writer.lock``: held exclusively by the one process changing the workspace, for the
+  whole verb (open, compute, commit), so nothing it commits rests on a stale read. The
+  holder writes its pid, host, verb and start time into the file, so a second writer can
+  say who it waits for. The kernel releases a flock when its process dies, however it
+  dies, so a killed writer never leaves a stale lock behind.
+- ``.reader.lock``: readers hold it shared while they read the manifest and the files it
+  names; a writer takes it exclusively, without waiting, only to delete files an older
+  generation named. If a reader holds it, the old files simply stay until a later commit.
+
+``flock`` works on local file systems of Linux and macOS; on network file systems its
+meaning depends on the server, which the README says.
+"""
+
+from __future__ import annotations
+
+import errno
+import fcntl
+import os
+import socket
+import time
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
+from pathlib import Path
+
+from ..clock import now
+from ..errors import BusyError, WorkspaceError
+
+__all__ = ["WRITER_LOCK", "READER_LOCK", "writer_lock", "reader_lock", "try_collect_lock",
+           "holds_writer_lock", "DEFAULT_WAIT"]
+
+WRITER_LOCK = ".writer.lock"
+READER_LOCK = ".reader.lock"
+DEFAULT_WAIT = 5.0  # seconds a second writer waits before it gives up (--wait changes it)
+_POLL = 0.1
+
+# Writer locks this process holds, by real path: a verb holding the lock may call the
+# store's save, which takes it again (re-entrant within one process, never across two).
+_held: dict[str, int] = {}
+
+
+def _key(folder: Path) -> str:
+    return os.path.realpath(folder)
+
+
+def holds_writer_lock(folder: str | Path) -> bool:
+    """Whether this process already holds the writer lock of ``folder``."""
+    return _key(Path(folder)) in _held
+
+
+def _holder(fd: int) -> str:
+    """Who holds the lock, as its holder wrote it: 'pid 123 on host h (grow since ...)'."""
+    try:
+        text = os.pread(fd, 512, 0).decode("utf-8", "replace").strip()
+    except OSError:
+        text = ""
+    return text or "another process"
+
+
+@contextmanager
+def writer_lock(folder: str | Path, verb: str, wait: float | None = None,
+                on_wait: Callable[[str], None] | None = None) -> Iterator[None]:
+    """Hold ``folder``'s writer lock for the block; BusyError (exit 3) after ``wait`` s."""
+    folder = Path(folder)
+    key = _key(folder)
+    if key in _held:
+        _held[key] += 1
+        try:
+            yield
+        finally:
+            _held[key] -= 1
+        return
+    wait = DEFAULT_WAIT if wait is None else max(0.0, float(wait))
+    try:
+        fd = os.open(folder / WRITER_LOCK, os.O_RDWR | os.O_CREAT | os.O_CLOEXEC, 0o666)
+    except OSError as exc:
+        raise WorkspaceError(f"{folder}: cannot open its writer lock ({exc.strerror}); a "
+                             f"workspace can only be changed where you may write") from None
+    try:
+        deadline = time.monotonic() + wait
+        told = False
+        while True:
+            try:
+                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+                break
+            except OSError as exc:
+                if exc.errno not in (errno.EAGAIN, errno.EACCES, errno.EWOULDBLOCK):
+                    raise
+            holder = _holder(fd)
+            if time.monotonic() >= deadline:
+                raise BusyError(f"{folder}: busy, {holder} holds its writer lock; try again "
+                                f"when it is done, or wait longer with --wait SECONDS")
+            if not told and on_wait is not None:
+                on_wait(f"{folder}: {holder} holds the writer lock; waiting up to "
+                        f"{wait:g} s")
+                told = True
+            time.sleep(_POLL)
+        stamp = f"pid {os.getpid()} on host {socket.gethostname()} ({verb} since {now()})"
+        os.ftruncate(fd, 0)
+        os.pwrite(fd, stamp.encode("utf-8"), 0)
+        _held[key] = 1
+        try:
+            yield
+        finally:
+            del _held[key]
+            try:
+                os.ftruncate(fd, 0)
+            except OSError:
+                pass
+    finally:
+        os.close(fd)  # closing the last descriptor releases the flock
+
+
+@contextmanager
+def reader_lock(folder: str | Path) -> Iterator[None]:
+    """Hold ``folder``'s reader lock shared for the block, where the file can be opened.
+
+    A workspace on read-only media, or one made before locks existed, has no lock file a
+    reader may create; it is read without one (nobody can be writing it either way).
+    """
+    path = Path(folder) / READER_LOCK
+    try:
+        fd = os.open(path, os.O_RDONLY | os.O_CLOEXEC)
+    except OSError:
+        yield
+        return
+    try:
+        fcntl.flock(fd, fcntl.LOCK_SH)
+        yield
+    finally:
+        os.close(fd)
+
+
+@contextmanager
+def try_collect_lock(folder: str | Path) -> Iterator[bool]:
+    """The reader lock exclusively if no reader holds it now (True), else False at once."""
+    try:
+        fd = os.open(Path(folder) / READER_LOCK, os.O_RDWR | os.O_CREAT | os.O_CLOEXEC, 0o666)
+    except OSError:
+        yield False
+        return
+    try:
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            yield False
+            return
+        yield True
+    finally:
+        os.close(fd)

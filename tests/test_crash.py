@@ -1,0 +1,171 @@
+"""A workspace survives a crash at any step of a commit, and a second crash after it.
+
+Two fault injectors, both killing a real process without any clean-up:
+
+- ``crash_driver.py`` (forked children dying by ``os._exit`` at the n-th file-system call
+  the store makes while committing) covers every step of a grow's commit, every step of
+  the next write's commit, and a sample of pairs (the full square is
+  ``benchmarks/crash_pairs.py``);
+- strace (``-e inject=SYSCALL:signal=KILL:when=N``, the strace manual's fault injection)
+  kills the real ``colonnade seal`` command at real system calls, with nothing of ours
+  in the loop.
+
+After each case the workspace must open, its record must verify, every sealed task must
+check ``exact``, no committed task may be missing, a commit that passed its commit point
+must be present, and the next writer must record what it recovered.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+HERE = Path(__file__).resolve().parent
+SRC = HERE.parent / "src"
+
+
+def _driver(base: Path, out: Path, cases) -> list[dict]:
+    env = {**os.environ, "PYTHONPATH": f"{SRC}{os.pathsep}{os.environ.get('PYTHONPATH', '')}"}
+    done = subprocess.run([sys.executable, str(HERE / "crash_driver.py"), str(base), str(out),
+                           json.dumps(cases)], capture_output=True, text=True, env=env,
+                          timeout=600)
+    assert done.returncode == 0, done.stderr[-2000:]
+    return [json.loads(line) for line in done.stdout.splitlines() if line.startswith("{")]
+
+
+@pytest.fixture(scope="module")
+def crash_base(tmp_path_factory):
+    base = tmp_path_factory.mktemp("crash-base")
+    (clean,) = _driver(base, base / "out", "count")
+    assert clean["problems"] == [] and clean["recovered"] is None
+    return base, clean
+
+
+def _commit_step(trace: list[str]) -> int:
+    """The 1-based step that renames the new manifest into place: the commit point."""
+    return trace.index("replace manifest.yaml") + 1
+
+
+def test_a_crash_at_every_step_of_a_commit_and_of_the_next_write(crash_base, tmp_path):
+    base, clean = crash_base
+    grow_steps, seal_steps = clean["first_steps"], clean["second_steps"]
+    assert grow_steps >= 15 and seal_steps >= 15  # pending, data files, manifest, clean-up
+    commit = _commit_step(clean["first_trace"])
+    cases = [[i, None] for i in range(1, grow_steps + 1)]
+    cases += [[None, j] for j in range(1, seal_steps + 1)]
+    results = _driver(base, tmp_path, cases)
+    assert len(results) == len(cases)
+    for case in results:
+        assert case["problems"] == [], case
+        if case["first"] is not None:
+            # Killed before the manifest's rename ran: the grow did not commit, and the
+            # next write grew the task itself; killed after it: the grow's task is there
+            # and the next write sealed it.
+            expected = "seal" if case["first"] > commit else "grow"
+            assert case["second_kind"] == expected, case
+            if case["first"] > commit:
+                assert case["recovered"] is None or "had committed" in case["recovered"]
+    recovered = [c for c in results if c["recovered"]]
+    assert recovered, "no case left an interrupted write for the next writer to record"
+    print(f"crash singles: {len(results)} tried, {len(results)} held "
+          f"(grow {grow_steps} steps, seal {seal_steps} steps, commit point at step {commit})")
+
+
+def test_a_crash_in_a_write_and_another_in_the_next_write(crash_base, tmp_path):
+    base, clean = crash_base
+    grow_steps, seal_steps = clean["first_steps"], clean["second_steps"]
+    # A sample spread over the whole square: every first step once, each with a different
+    # second step (the full square is benchmarks/crash_pairs.py).
+    cases = [[i, 1 + (7 * i) % seal_steps] for i in range(1, grow_steps + 1, 2)]
+    results = _driver(base, tmp_path, cases)
+    assert len(results) == len(cases)
+    for case in results:
+        assert case["problems"] == [], case
+    print(f"crash pairs (sample): {len(results)} tried, {len(results)} held")
+
+
+# ------------------------------------------------------------------ strace, real commands
+def _strace_works() -> str | None:
+    """strace's path when it can trace here (ptrace may be forbidden in a container)."""
+    path = shutil.which("strace")
+    if path is None:
+        return None
+    probe = subprocess.run([path, "-qq", "-o", os.devnull, "true"], capture_output=True)
+    return path if probe.returncode == 0 else None
+
+
+STRACE = _strace_works()
+
+
+def _cli(*args, strace: list[str] | None = None, cwd=None) -> subprocess.CompletedProcess:
+    env = {**os.environ, "PYTHONDONTWRITEBYTECODE": "1",
+           "PYTHONPATH": f"{SRC}{os.pathsep}{os.environ.get('PYTHONPATH', '')}"}
+    command = [sys.executable, "-m", "colonnade", *args]
+    return subprocess.run([*(strace or []), *command], capture_output=True, text=True,
+                          env=env, timeout=300, cwd=cwd)
+
+
+def _main_thread_calls(trace_file: Path, names: tuple[str, ...]) -> list[tuple[str, int, str]]:
+    """(syscall, its invocation number in the main thread, the line) from an strace log."""
+    lines = trace_file.read_text().splitlines()
+    main_pid = lines[0].split()[0]
+    seen: dict[str, int] = {}
+    calls = []
+    for line in lines:
+        pid, _, rest = line.partition(" ")
+        name = rest.split("(", 1)[0].strip()
+        if pid != main_pid or name not in names or "resumed>" in rest:
+            continue
+        seen[name] = seen.get(name, 0) + 1
+        calls.append((name, seen[name], rest))
+    return calls
+
+
+@pytest.mark.skipif(STRACE is None, reason="strace is missing or may not trace here (make setup installs it)")
+def test_the_real_seal_command_killed_by_strace_at_its_commit(crash_base, tmp_path):
+    base, _ = crash_base
+    from colonnade.app.evidence import check_workspace
+    from colonnade.app.record import history
+    from colonnade.app.transaction import recover
+    from colonnade.app.workspace import grow_workspace
+
+    info = json.loads((base / "base.json").read_text())
+    files = info["files"]
+    # The grow of task "new" committed, uninterrupted, on a copy; the seal is the victim.
+    ready = tmp_path / "ready"
+    shutil.copytree(info["ws"], ready)
+    grow_workspace(ready, "new", files["new"][0], progress=False)
+    names = ("rename", "renameat", "renameat2", "fsync", "unlink", "unlinkat")
+    dry = tmp_path / "dry"
+    shutil.copytree(ready, dry)
+    log = tmp_path / "seal.strace"
+    done = _cli("seal", str(dry), "--task", "new", "--probe", files["new"][1],
+                strace=[STRACE, "-f", "-qq", "-o", str(log), "-e", f"trace={','.join(names)}"])
+    assert done.returncode == 0, done.stderr
+    calls = _main_thread_calls(log, names)
+    manifest_rename = next(c for c in calls if c[0].startswith("rename")
+                           and '/manifest.yaml"' in c[2])
+    after = calls[calls.index(manifest_rename) + 1]  # the folder's fsync: committed
+    cleanup = next(c for c in calls if c[0].startswith("unlink"))
+    victims = [(manifest_rename, False), (after, True), (cleanup, True)]
+    for (name, number, line), committed in victims:
+        ws = tmp_path / f"kill-{name}-{number}"
+        shutil.copytree(ready, ws)
+        killed = _cli("seal", str(ws), "--task", "new", "--probe", files["new"][1],
+                      strace=[STRACE, "-f", "-qq", "-o", os.devnull,
+                              "-e", f"inject={name}:signal=KILL:when={number}"])
+        assert killed.returncode != 0, (line, killed.stderr)
+        report = check_workspace(ws)
+        assert report.passed, (line, report.record.first, report.tasks)
+        sealed = {t.task for t in report.tasks if t.verdict == "exact"}
+        assert ("new" in sealed) == committed and "old" in sealed, (line, sealed)
+        # The next writer finishes or undoes what the killed one left, and records it.
+        assert recover(ws) is not None, line
+        assert history(ws)[-1].step == "recovered"
+        assert check_workspace(ws).passed

@@ -1,0 +1,188 @@
+"""One writer at a time: real processes racing on one workspace, and readers during commits.
+
+The lock is the kernel's ``flock`` (Linux flock(2)): held by an open file, released when
+the process dies however it dies. The invariant checked everywhere below: never two
+writers that both exit 0 with one change lost; a writer that cannot get the lock stops
+with one sentence and exit code 3.
+"""
+
+from __future__ import annotations
+
+import os
+import signal
+import subprocess
+import sys
+import threading
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+import torch
+from conftest import snapshot
+
+from colonnade.app.record import verify_record
+from colonnade.app.transaction import lock_wait
+from colonnade.app.workspace import grow_workspace, new_workspace
+from colonnade.errors import BusyError
+from colonnade.files import store
+
+SRC = Path(__file__).resolve().parent.parent / "src"
+ENV = {**os.environ, "PYTHONPATH": f"{SRC}{os.pathsep}{os.environ.get('PYTHONPATH', '')}"}
+SPEC = ("input: [8]\ncolumn:\n  - dense: 12\n  - act: relu\nlateral: {kind: linear}\n"
+        "train: {epochs: 2, batch_size: 32, seed: 0}\n")
+
+
+@pytest.fixture(scope="module")
+def small(tmp_path_factory):
+    root = tmp_path_factory.mktemp("lock")
+    rng = np.random.default_rng(1)
+    data = {}
+    for name in ("a", "x", "y"):
+        y = np.repeat(np.arange(3), 30)
+        x = (rng.normal(size=(3, 8))[y] * 2 + rng.normal(size=(90, 8)) * 0.3).astype("float32")
+        np.savez(root / f"{name}.npz", x=x, y=y)
+        data[name] = str(root / f"{name}.npz")
+    (root / "spec.yaml").write_text(SPEC)
+    ws = root / "ws"
+    new_workspace(root / "spec.yaml", ws)
+    grow_workspace(ws, "a", data["a"], progress=False)
+    return root, ws, data
+
+
+def _copy(small, tmp_path) -> Path:
+    import shutil
+
+    shutil.copytree(small[1], tmp_path / "ws")
+    return tmp_path / "ws"
+
+
+HOLD = """
+import sys, time
+from colonnade.files.lock import writer_lock
+with writer_lock(sys.argv[1], "grow"):
+    print("held", flush=True)
+    time.sleep(float(sys.argv[2]))
+"""
+
+
+def _holder(ws: Path, seconds: float) -> subprocess.Popen:
+    proc = subprocess.Popen([sys.executable, "-c", HOLD, str(ws), str(seconds)],
+                            stdout=subprocess.PIPE, text=True, env=ENV)
+    assert proc.stdout.readline().strip() == "held"
+    return proc
+
+
+def _cli(*args) -> subprocess.CompletedProcess:
+    return subprocess.run([sys.executable, "-m", "colonnade", *args], capture_output=True,
+                          text=True, env=ENV, timeout=300)
+
+
+def test_a_second_writer_stops_with_exit_3_naming_the_holder(small, tmp_path):
+    ws = _copy(small, tmp_path)
+    before = snapshot(ws)
+    holder = _holder(ws, 60)
+    try:
+        done = _cli("grow", str(ws), "--task", "x", "--train", small[2]["x"], "--quiet",
+                    "--wait", "0")
+    finally:
+        holder.kill()
+        holder.wait()
+    assert done.returncode == 3, done.stderr
+    assert "Traceback" not in done.stderr and done.stderr.count("\n") == 1
+    assert f"pid {holder.pid} on host" in done.stderr and "(grow since" in done.stderr
+    after = snapshot(ws)
+    after.pop(".writer.lock"), before.pop(".writer.lock")  # the killed holder's own note
+    assert after == before
+
+
+def test_a_killed_writer_leaves_no_stale_lock(small, tmp_path):
+    ws = _copy(small, tmp_path)
+    holder = _holder(ws, 60)
+    os.kill(holder.pid, signal.SIGKILL)
+    holder.wait()
+    with lock_wait(0):  # the kernel released the lock with the process
+        grow_workspace(ws, "x", small[2]["x"], progress=False)
+    assert store.load(ws).tasks == ["a", "x"]
+
+
+def test_a_writer_waits_for_the_holder_and_says_so(small, tmp_path):
+    ws = _copy(small, tmp_path)
+    holder = _holder(ws, 1.5)
+    start = time.monotonic()
+    with pytest.warns(UserWarning, match="holds the writer lock; waiting up to 30 s"):
+        with lock_wait(30):
+            grow_workspace(ws, "x", small[2]["x"], progress=False)
+    assert time.monotonic() - start >= 1.0
+    holder.wait()
+    assert store.load(ws).tasks == ["a", "x"]
+    with lock_wait(0):
+        holder = _holder(ws, 30)
+        try:
+            with pytest.raises(BusyError):
+                grow_workspace(ws, "y", small[2]["y"], progress=False)
+        finally:
+            holder.kill()
+            holder.wait()
+
+
+def _race(commands: list[list[str]]) -> list[subprocess.CompletedProcess]:
+    procs = [subprocess.Popen([sys.executable, "-m", "colonnade", *c], stdout=subprocess.PIPE,
+                              stderr=subprocess.PIPE, text=True, env=ENV) for c in commands]
+    results = []
+    for proc, command in zip(procs, commands, strict=True):
+        out, err = proc.communicate(timeout=300)
+        results.append(subprocess.CompletedProcess(command, proc.returncode, out, err))
+    return results
+
+
+def test_two_real_grows_and_two_real_seals_never_lose_a_change(small, tmp_path):
+    ws = _copy(small, tmp_path)
+    data = small[2]
+    grows = _race([["grow", str(ws), "--task", t, "--train", data[t], "--quiet", "--wait",
+                    "120"] for t in ("x", "y")])
+    tasks = store.load(ws).tasks
+    for result, task in zip(grows, ("x", "y"), strict=True):
+        assert result.returncode in (0, 3), result.stderr
+        assert (task in tasks) == (result.returncode == 0), (task, tasks, result.stderr)
+    assert [r.returncode for r in grows] == [0, 0]  # with --wait, both got their turn
+    seals = _race([["seal", str(ws), "--task", t, "--probe", data[t], "--wait", "0"]
+                   for t in ("x", "y")])
+    sealed = set(store.load(ws).meta.get("seals") or {})
+    for result, task in zip(seals, ("x", "y"), strict=True):
+        assert result.returncode in (0, 3), result.stderr
+        assert (task in sealed) == (result.returncode == 0), (task, sealed, result.stderr)
+        if result.returncode == 3:
+            assert "busy" in result.stderr and "Traceback" not in result.stderr
+    assert verify_record(ws).passed
+
+
+def test_readers_never_see_a_commit_in_flight(small, tmp_path):
+    """Loads and record checks while another thread commits generation after generation."""
+    ws = _copy(small, tmp_path)
+    stop = threading.Event()
+    commits = []
+
+    def writer():
+        net = store.load(ws)
+        k = 0
+        while not stop.is_set() and k < 40:
+            k += 1
+            net.attachments["extra.safetensors"] = {"k": torch.full((256,), float(k))}
+            store.save(net, ws)
+            commits.append(k)
+
+    thread = threading.Thread(target=writer)
+    thread.start()
+    reads = 0
+    try:
+        while thread.is_alive() and reads < 400:
+            net = store.load(ws)  # strict: a half-collected generation would raise here
+            assert net.tasks == ["a"]
+            report = verify_record(ws)
+            assert report.passed, report.first
+            reads += 1
+    finally:
+        stop.set()
+        thread.join()
+    assert commits and reads >= 5, (len(commits), reads)
