@@ -215,3 +215,25 @@ def test_a_listed_name_that_leaves_the_workspace_is_refused(tmp_path, name):
         store.load(ws)  # the record binds the files section first
     with pytest.raises(WorkspaceError, match="not a plain name inside the workspace"):
         store.load(ws, strict=False)  # as check reads it: still never outside
+
+
+def test_links_planted_in_a_workspace_are_never_written_through(tmp_path):
+    """A workspace from someone else may hold symbolic links where colonnade keeps its own
+    files; writing through one would change a file outside the workspace."""
+    net, ws = _ws(tmp_path)
+    victim = tmp_path / "victim.txt"
+    victim.write_text("the user's own file\n")
+    (ws / ".writer.lock").unlink()
+    (ws / ".writer.lock").symlink_to(victim)
+    with pytest.raises(WorkspaceError, match="symbolic link"):
+        store.save(net, ws)
+    assert victim.read_text() == "the user's own file\n"
+    (ws / ".writer.lock").unlink()
+    elsewhere = tmp_path / "elsewhere"
+    os.replace(ws / "data", elsewhere)
+    (ws / "data").symlink_to(elsewhere)
+    before = snapshot(elsewhere)
+    net.add_column("t2", 3, seed=5)
+    with pytest.raises(WorkspaceError, match="not a folder of its own"):
+        store.save(net, ws)
+    assert snapshot(elsewhere) == before

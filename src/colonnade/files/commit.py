@@ -88,7 +88,11 @@ def _write_durably(folder: Path, final: str, data: bytes) -> None:
     """Write ``data`` to a fresh temporary file in ``folder``, fsync it, rename it to
     ``final``. Every step is one plain system call, so a crash test can stop at each."""
     tmp = folder / f"{_TMP_PREFIX}{os.getpid()}-{final}"
-    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC | os.O_CLOEXEC, 0o666 & ~_UMASK)
+    if os.path.lexists(tmp):  # left by a crashed process that had the same pid
+        os.unlink(tmp)
+    # O_EXCL | O_NOFOLLOW: never write through a link someone placed in the workspace.
+    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_NOFOLLOW | os.O_CLOEXEC,
+                 0o666 & ~_UMASK)
     try:
         view = memoryview(data)
         while view:
@@ -105,7 +109,8 @@ def read_pending(folder: Path) -> dict[str, Any] | None:
     if not path.is_file():
         return None
     try:
-        with open(path, "rb") as handle:
+        fd = os.open(path, os.O_RDONLY | os.O_NOFOLLOW | os.O_CLOEXEC)
+        with os.fdopen(fd, "rb") as handle:
             note = json.loads(handle.read(1 << 20))
     except (OSError, ValueError):
         return {"verb": "unknown", "unreadable": True}
@@ -169,13 +174,17 @@ def write_generation(folder: Path, files: Mapping[str, bytes], text: str,
     committed = False
     with _signals_held() as interrupted:
         try:
+            if data_dir.is_symlink() or (data_dir.exists() and not data_dir.is_dir()):
+                raise WorkspaceError(f"{data_dir}: is not a folder of its own (a link or a "
+                                     f"file), and a workspace's files must lie inside it; "
+                                     f"replace it with the folder it stands for")
             _write_durably(folder, PENDING, json.dumps(note).encode("utf-8"))
             if not data_dir.is_dir():
                 os.mkdir(data_dir)
             _fsync_dir(folder)
             for name, data in files.items():
                 target = data_dir / Path(stored_path(name, _sha_hex(data))).name
-                if target.is_file() and _holds(target, data):
+                if target.is_file() and not target.is_symlink() and _holds(target, data):
                     continue
                 _write_durably(data_dir, target.name, data)
                 written.append(target)
@@ -241,7 +250,8 @@ def _collect(folder: Path, keep: set[str], retired: set[str]) -> None:
             return
         data_dir = folder / DATA
         for entry in os.scandir(data_dir):
-            if f"{DATA}/{entry.name}" not in keep and entry.is_file(follow_symlinks=False):
+            if f"{DATA}/{entry.name}" not in keep and (entry.is_symlink()
+                                                       or entry.is_file(follow_symlinks=False)):
                 os.unlink(entry.path)
         for entry in os.scandir(folder):
             name = entry.name

@@ -36,6 +36,9 @@ WRITER_LOCK = ".writer.lock"
 READER_LOCK = ".reader.lock"
 DEFAULT_WAIT = 5.0  # seconds a second writer waits before it gives up (--wait changes it)
 _POLL = 0.1
+# Lock files are opened without following a symbolic link: a workspace from someone else
+# could otherwise point one at a file of the user's, which the holder's note overwrites.
+_OPEN = os.O_CLOEXEC | os.O_NOFOLLOW
 
 # Writer locks this process holds, by real path: a verb holding the lock may call the
 # store's save, which takes it again (re-entrant within one process, never across two).
@@ -75,8 +78,11 @@ def writer_lock(folder: str | Path, verb: str, wait: float | None = None,
         return
     wait = DEFAULT_WAIT if wait is None else max(0.0, float(wait))
     try:
-        fd = os.open(folder / WRITER_LOCK, os.O_RDWR | os.O_CREAT | os.O_CLOEXEC, 0o666)
+        fd = os.open(folder / WRITER_LOCK, _OPEN | os.O_RDWR | os.O_CREAT, 0o666)
     except OSError as exc:
+        if exc.errno == errno.ELOOP:
+            raise WorkspaceError(f"{folder / WRITER_LOCK}: is a symbolic link, which "
+                                 f"colonnade never makes; remove it") from None
         raise WorkspaceError(f"{folder}: cannot open its writer lock ({exc.strerror}); a "
                              f"workspace can only be changed where you may write") from None
     try:
@@ -123,7 +129,7 @@ def reader_lock(folder: str | Path) -> Iterator[None]:
     """
     path = Path(folder) / READER_LOCK
     try:
-        fd = os.open(path, os.O_RDONLY | os.O_CLOEXEC)
+        fd = os.open(path, _OPEN | os.O_RDONLY)
     except OSError:
         yield
         return
@@ -138,7 +144,7 @@ def reader_lock(folder: str | Path) -> Iterator[None]:
 def try_collect_lock(folder: str | Path) -> Iterator[bool]:
     """The reader lock exclusively if no reader holds it now (True), else False at once."""
     try:
-        fd = os.open(Path(folder) / READER_LOCK, os.O_RDWR | os.O_CREAT | os.O_CLOEXEC, 0o666)
+        fd = os.open(Path(folder) / READER_LOCK, _OPEN | os.O_RDWR | os.O_CREAT, 0o666)
     except OSError:
         yield False
         return
