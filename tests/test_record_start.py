@@ -154,3 +154,28 @@ def test_record_start_refusals_change_nothing(made, tmp_path, capsys):
     assert "has a chained record already" in err and "Traceback" not in err
     assert snapshot(ws) == started
     assert history(ws)[-1].by == "Mia"
+
+
+def test_record_start_waits_for_another_writer(made, tmp_path, capsys):
+    """It takes the workspace's writer lock like any writing verb: while another process
+    holds it (a real flock(2) in a child process), it stops with exit 3 and writes nothing."""
+    import subprocess
+    import sys
+
+    ws = _copy(made, tmp_path)
+    holder = subprocess.Popen(
+        [sys.executable, "-c", "import sys, time\n"
+         "from colonnade.files.lock import writer_lock\n"
+         "with writer_lock(sys.argv[1], 'grow'):\n"
+         "    print('held', flush=True); time.sleep(60)\n", str(ws)],
+        stdout=subprocess.PIPE, text=True)
+    try:
+        assert holder.stdout.readline().strip() == "held"
+        before = yaml.safe_load((ws / store.MANIFEST).read_text())
+        assert main(["record", "start", str(ws), "--reason", "migrated", "--wait", "0"]) == 3
+        assert "grow" in capsys.readouterr().err
+        assert yaml.safe_load((ws / store.MANIFEST).read_text()) == before
+    finally:
+        holder.kill()
+        holder.wait()
+    assert main(["record", "start", str(ws), "--reason", "migrated"]) == 0

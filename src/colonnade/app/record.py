@@ -21,12 +21,12 @@ from ..evidence.provenance import match_data, sample_fingerprint
 from ..evidence.record import Finding, RecordEntry, chain_found, typed_history, verify_chain
 from ..evidence.signing import key_id, load_signer, load_trusted, new_key_pems
 from ..files.limits import sha256_file
-from ..files.lock import reader_lock
+from ..files.lock import reader_lock, writer_lock
 from ..files.manifest import MANIFEST, manifest_text, read_manifest
 from ..files.store import listed_path, save
 from ..training.data import load_for_spec
 from ..training.sources import source_digest
-from .transaction import attribution, read_workspace
+from .transaction import attribution, read_workspace, tell_waiting, wait_seconds
 
 __all__ = ["verify_record", "history", "new_key", "match_data_file", "start_record"]
 
@@ -110,19 +110,23 @@ def start_record(folder: str | Path, reason: str, by: str | None = None,
         raise UsageError("starting the record needs --reason TEXT saying why the earlier "
                          "history is taken as it is")
     folder = Path(folder)
-    manifest = read_manifest(folder)
-    if "record" in manifest:
-        raise UsageError(f"{folder} has a chained record already, so there is nothing to "
-                         f"start; run 'colonnade check {folder}' to verify it")
-    net = read_workspace(folder, strict=False)
-    changed = net.meta.pop("_mismatched", [])
-    if changed:
-        raise WorkspaceError(f"{folder}: file {changed[0]} does not match the SHA-256 its "
-                             f"manifest records, so it was changed outside colonnade and a "
-                             f"record is not started over it; restore it from a backup")
-    entry = chain_found(net.meta.get("history"), now())
-    net.meta["history"].append(entry)
-    save(net, folder, who)
+    read_manifest(folder)  # one sentence if this is no workspace, before any lock file
+    # Not ``writing()``: its strict open refuses exactly this workspace. The same lock,
+    # taken before the read, so nothing committed rests on a stale read.
+    with writer_lock(folder, "record start", wait_seconds(), tell_waiting):
+        if "record" in read_manifest(folder):
+            raise UsageError(f"{folder} has a chained record already, so there is nothing "
+                             f"to start; run 'colonnade check {folder}' to verify it")
+        net = read_workspace(folder, strict=False)
+        changed = net.meta.pop("_mismatched", [])
+        if changed:
+            raise WorkspaceError(f"{folder}: file {changed[0]} does not match the SHA-256 "
+                                 f"its manifest records, so it was changed outside colonnade "
+                                 f"and a record is not started over it; restore it from a "
+                                 f"backup")
+        entry = chain_found(net.meta.get("history"), now())
+        net.meta["history"].append(entry)
+        save(net, folder, who)
     return entry
 
 
