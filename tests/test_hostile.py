@@ -432,3 +432,27 @@ def test_a_manifest_packed_with_values_is_refused_while_scanned(workspace, tmp_p
         read_manifest(ws)
     # The workspace as written (under a thousand values) still reads under that limit.
     assert read_manifest(_copy(workspace, tmp_path / "b"))["format"] == "colonnade-workspace"
+
+
+def test_ctrl_c_during_a_real_commit_is_reported_as_committed(workspace, tmp_path,
+                                                              monkeypatch, capsys):
+    """``seal`` through the command line, with a real SIGINT sent at the commit's first
+    fsync (the store holds Ctrl-C from there to the end of the commit): the seal is
+    committed, and the sentence says so."""
+    ws = _copy(workspace, tmp_path)
+    real_fsync, calls = os.fsync, [0]
+
+    def fsync_then_interrupt(fd):
+        calls[0] += 1
+        if calls[0] == 1:
+            os.kill(os.getpid(), signal.SIGINT)  # as Ctrl-C sends it
+        return real_fsync(fd)
+
+    monkeypatch.setattr(os, "fsync", fsync_then_interrupt)
+    code = main(["seal", str(ws), "--task", "b", "--probe",
+                 str(workspace.parent / "probe.npz"), "--accept-low-accuracy"])
+    monkeypatch.setattr(os, "fsync", real_fsync)
+    assert code == 130 and calls[0] > 1  # the commit went on after the signal
+    assert capsys.readouterr().err == ("colonnade: interrupted after the commit point; the "
+                                       "change was committed and the workspace is whole\n")
+    assert "b" in read_manifest(ws)["seals"]  # committed, as the sentence says
