@@ -35,6 +35,7 @@ from ..clock import now
 from ..errors import WorkspaceError
 
 __all__ = ["RECORD_FORMAT", "Attribution", "Finding", "RecordEntry", "canonical",
+           "chained_prefix",
            "value_digest", "entry_digest", "state_digests", "extend", "verify_chain",
            "describe_entry", "typed_history", "default_author", "signature_required_from",
            "unchain", "chain_found", "RECORD_STARTED"]
@@ -200,7 +201,7 @@ def _opt(value: Any) -> str | None:
 
 
 # ----------------------------------------------------------------------------- writing
-def _chained_prefix(history: list[Any]) -> int:
+def chained_prefix(history: list[Any]) -> int:
     """How many entries at the start are already chained (carry a digest)."""
     count = 0
     for entry in history:
@@ -222,7 +223,7 @@ def extend(manifest: dict[str, Any], who: Attribution) -> list[dict[str, Any]]:
     if not isinstance(history, list):
         raise WorkspaceError("refusing to save: the workspace's history is not a list; "
                              "reload the workspace")
-    done = _chained_prefix(history)
+    done = chained_prefix(history)
     broken = _chain_findings(history[:done])
     if any(isinstance(e, Mapping) and "entry_sha256" in e for e in history[done:]):
         broken.append(Finding("an entry without a digest sits between chained entries"))

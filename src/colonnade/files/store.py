@@ -26,7 +26,7 @@ from safetensors.torch import save as st_save
 from .._version import __version__
 from ..clock import now
 from ..errors import ColonnadeError, WorkspaceError
-from ..evidence.record import Attribution, extend, verify_chain
+from ..evidence.record import Attribution, chained_prefix, extend, verify_chain
 from ..model.adopted import ADOPTED_FILE, rebuild_adopted
 from ..model.guard import verify_unchanged
 from ..model.network import ProgressiveNet
@@ -162,7 +162,7 @@ def save(net: ProgressiveNet, folder: str | Path, who: Attribution | None = None
         recovered = pending_recovery(folder, _chained(current))
         if recovered is not None:
             history = manifest.setdefault("history", [])
-            history.insert(_chained_count(history), recovered)
+            history.insert(chained_prefix(history), recovered)
         extend(manifest, who)
         note = {"verb": who.verb, "by": who.author, "pid": os.getpid(),
                 "host": socket.gethostname(), "time": now(), "from_head": _head(current),
@@ -181,16 +181,6 @@ def _only_created(manifest: dict[str, Any]) -> bool:
     return (isinstance(history, list) and len(history) == 1
             and isinstance(history[0], dict) and history[0].get("step") == "created"
             and not (manifest.get("network") or {}).get("tasks"))
-
-
-def _chained_count(history: list[Any]) -> int:
-    """How many entries at the start of ``history`` are already chained."""
-    count = 0
-    for entry in history:
-        if not (isinstance(entry, dict) and "entry_sha256" in entry):
-            break
-        count += 1
-    return count
 
 
 def _manifest_of(net: ProgressiveNet, files: dict[str, bytes]) -> dict[str, Any]:
