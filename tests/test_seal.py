@@ -405,3 +405,24 @@ def test_probe_metrics_match_scikit_learn():
     want = recall_score(y.numpy(), pred, labels=range(3), average=None)
     assert m["recall"][:3] == pytest.approx(list(want))
     assert m["recall"][3] is None
+
+
+def test_a_task_with_many_classes_keeps_recall_but_no_confusion_matrix():
+    """The confusion matrix grows with the square of the class count; above
+    CONFUSION_MAX_CLASSES it is not built, and accuracy and recall are counted directly.
+    Reference: the accuracy and recall recomputed here with numpy from the same labels."""
+    classes = seal.CONFUSION_MAX_CLASSES + 1
+    g = torch.Generator().manual_seed(0)
+    logits = torch.randn(500, classes, generator=g)
+    y = torch.randint(0, classes, (500,), generator=g)
+    y[:200] = logits[:200].argmax(1)  # some hits
+    metrics = seal.probe_metrics(logits, y, classes)
+    pred, labels = logits.argmax(1).numpy(), y.numpy()
+    assert metrics["confusion"] is None
+    assert metrics["accuracy"] == float((pred == labels).sum()) / 500
+    for c in (0, classes - 1):
+        rows = labels == c
+        want = float((pred[rows] == c).sum()) / float(rows.sum()) if rows.any() else None
+        assert metrics["recall"][c] == want
+    small = seal.probe_metrics(logits[:, :3], y % 3, 3)
+    assert np.array(small["confusion"]).sum() == 500

@@ -96,20 +96,30 @@ def _recorded(path: str | Path, relative_to: str | Path | None) -> str:
         return str(path)
 
 
-def probe_metrics(logits: torch.Tensor, y: torch.Tensor, classes: int) -> dict[str, Any]:
-    """Accuracy, per-class recall (None for a class absent from the probe), confusion.
+# A seal records its confusion matrix for at most this many classes: the matrix grows
+# with the square of the class count (65,536 classes would be 34 GB to build and 4
+# billion values in the manifest), while accuracy and per-class recall, kept for every
+# task, grow only with the count. Our own bound: a 100 x 100 matrix is 10,000 values.
+CONFUSION_MAX_CLASSES = 100
 
-    Confusion rows are true classes, columns predicted classes.
-    """
+
+def probe_metrics(logits: torch.Tensor, y: torch.Tensor, classes: int) -> dict[str, Any]:
+    """Accuracy, per-class recall (None for a class absent from the probe), and the
+    confusion matrix (rows true classes, columns predicted; None above
+    ``CONFUSION_MAX_CLASSES`` classes)."""
     pred = logits.argmax(1)
-    confusion = torch.zeros(classes, classes, dtype=torch.int64)
-    confusion.index_put_((y, pred), torch.ones_like(y), accumulate=True)
-    support = confusion.sum(1)
-    recall = [float(confusion[c, c]) / float(support[c]) if support[c] > 0 else None
+    support = torch.bincount(y, minlength=classes)
+    hits = torch.bincount(y[pred == y], minlength=classes)
+    recall = [float(hits[c]) / float(support[c]) if support[c] > 0 else None
               for c in range(classes)]
     total = int(support.sum())
-    return {"accuracy": float(confusion.trace()) / total if total else None,
-            "recall": recall, "confusion": confusion.tolist()}
+    confusion = None
+    if classes <= CONFUSION_MAX_CLASSES:
+        matrix = torch.zeros(classes, classes, dtype=torch.int64)
+        matrix.index_put_((y, pred), torch.ones_like(y), accumulate=True)
+        confusion = matrix.tolist()
+    return {"accuracy": float(hits.sum()) / total if total else None,
+            "recall": recall, "confusion": confusion}
 
 
 def environment() -> dict[str, str]:

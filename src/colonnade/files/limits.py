@@ -21,16 +21,18 @@ __all__ = ["confined", "sha256_file", "read_bounded", "CHUNK", "MAX_MANIFEST_BYT
 
 CHUNK = 1 << 20  # hashing reads 1 MiB at a time, whatever the file's size
 # The largest manifest colonnade reads. A manifest holds the spec, the network's layout,
-# the history and the seals' digests: a few KiB per task, so a workspace of thousands of
-# tasks stays far below this, while a file of this size still parses in seconds. Our own
-# bound (the manifests colonnade writes measured a few KiB to a few hundred KiB).
-MAX_MANIFEST_BYTES = 32 << 20
+# the history and the seals' digests: a few KiB per task, so a workspace of a thousand
+# tasks stays far below this, while a file of this size still parses in seconds (a
+# 28.5 MiB manifest took 30 s and 1.1 GB to read on this project's 2-core machine, so the
+# bound is a quarter of that). Our own bound (the manifests colonnade writes measured a
+# few KiB to a few hundred KiB).
+MAX_MANIFEST_BYTES = 8 << 20
 # The most values (YAML scalars, mappings and sequences) a manifest may hold. Manifests
 # colonnade writes hold one value per 14 to 15 bytes (measured on a small workspace and on
-# a 28.5 MiB one), so a manifest of MAX_MANIFEST_BYTES holds about 2.3 million; a file
-# packed with two-byte values (``[1,1,1,...``) would hold 16 million, and building them
-# would take gigabytes, so it is refused while it is scanned, before anything is built.
-MAX_MANIFEST_VALUES = 3_000_000
+# a 28.5 MiB one), so a manifest of MAX_MANIFEST_BYTES holds about 600,000; a file packed
+# with two-byte values (``[1,1,1,...``) would hold 4 million, and building them would take
+# gigabytes, so it is refused while it is scanned, before anything is built.
+MAX_MANIFEST_VALUES = 1_000_000
 
 
 def confined(folder: Path, relative: str) -> Path:
