@@ -20,7 +20,7 @@ from ..evidence.integrity import RecordReport, verify_manifest
 from ..evidence.provenance import match_data, sample_fingerprint
 from ..evidence.record import Finding, RecordEntry, chain_found, typed_history, verify_chain
 from ..evidence.signing import key_id, load_signer, load_trusted, new_key_pems
-from ..files.limits import sha256_file
+from ..files.limits import MAX_MANIFEST_BYTES, read_bounded, sha256_file
 from ..files.lock import reader_lock, writer_lock
 from ..files.manifest import MANIFEST, manifest_text, read_manifest
 from ..files.store import listed_path, save
@@ -60,9 +60,10 @@ def _one_manifest(folder: Path) -> tuple[dict[str, Any], bytes]:
     (every commit moves the record head, so a manifest's bytes never come back)."""
     path = folder / MANIFEST
     for _ in range(20):
-        before = path.read_bytes()
+        # Bounded like read_manifest: a manifest that claims gigabytes is never read whole.
+        before = read_bounded(path, MAX_MANIFEST_BYTES, "a manifest")
         manifest = read_manifest(folder)
-        if path.read_bytes() == before:
+        if read_bounded(path, MAX_MANIFEST_BYTES, "a manifest") == before:
             return manifest, before
     raise WorkspaceError(f"{folder}: its manifest changed 20 times while it was read; check "
                          f"it when no writer is busy with it")

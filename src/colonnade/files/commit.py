@@ -19,7 +19,9 @@ A crash before step 3's rename leaves the old manifest, whose files are all unto
 crash after it leaves the new one, whose files were durable before it. A second crash,
 during the next write, finds the same: the last committed generation is never touched
 before a newer one is durable. The next writer sees ``.pending`` and records a
-``recovered`` entry in the history saying what it found (see ``pending_recovery``).
+``recovered`` entry in the history saying what it found (see ``pending_recovery``). The
+note may not be ours (a workspace from someone else), so it is read bounded: 1 MiB, at
+most 16 interrupted writes carried one inside another, 80 characters a field.
 
 Ctrl-C during steps 1 to 4 is held until the commit is finished, then raised as
 ``InterruptedAfterCommit``, so the user is told the truth: the change was committed.
@@ -52,6 +54,7 @@ DATA = "data"
 PENDING = ".pending"
 _TMP_PREFIX = ".tmp-"
 _SHA = re.compile(r"[0-9a-f]{64}")
+_MAX_CARRIED = 16  # interrupted commits a note tells of, and the history entry describes
 _UMASK = os.umask(0)
 os.umask(_UMASK)
 
@@ -109,20 +112,40 @@ def read_pending(folder: Path) -> dict[str, Any] | None:
     if not path.is_file():
         return None
     try:
-        fd = os.open(path, os.O_RDONLY | os.O_NOFOLLOW | os.O_CLOEXEC)
+        fd = os.open(path, os.O_RDONLY | os.O_NOFOLLOW | os.O_CLOEXEC | os.O_NONBLOCK)
         with os.fdopen(fd, "rb") as handle:
             note = json.loads(handle.read(1 << 20))
-    except (OSError, ValueError):
+    except (OSError, ValueError, RecursionError):  # RecursionError: nested thousands deep
         return {"verb": "unknown", "unreadable": True}
-    return note if isinstance(note, dict) else {"verb": "unknown", "unreadable": True}
+    return _bounded(note) if isinstance(note, dict) else {"verb": "unknown", "unreadable": True}
+
+
+def _bounded(note: Mapping[str, Any], depth: int = _MAX_CARRIED) -> dict[str, Any]:
+    """``note`` with at most ``depth`` interrupted commits carried inside one another, so
+    crash after crash (or a crafted note) never makes the note deeper than a reader can
+    parse; older ones are dropped, and the history then says that there were more."""
+    kept = dict(note)
+    carried = kept.get("carries")
+    if isinstance(carried, Mapping) and depth > 1:
+        kept["carries"] = _bounded(carried, depth - 1)
+    elif carried is not None:
+        kept["carries"] = {"verb": "unknown", "unreadable": True, "more": True}
+    return kept
+
+
+def _field(note: Mapping[str, Any], key: str, default: str) -> str:
+    """One field of a note for the history, cut short: the note may not be ours."""
+    return str(note.get(key, default))[:80]
 
 
 def _describe(note: Mapping[str, Any], chained: set[str]) -> str:
-    who = f"{note.get('verb', 'a write')} (pid {note.get('pid', '?')} on " \
-          f"{note.get('host', '?')}, {note.get('time', 'time unknown')})"
+    who = f"{_field(note, 'verb', 'a write')} (pid {_field(note, 'pid', '?')} on " \
+          f"{_field(note, 'host', '?')}, {_field(note, 'time', 'time unknown')})"
+    if note.get("more"):
+        return "earlier interrupted writes, not described one by one"
     if note.get("unreadable"):
         return "an interrupted write left an unreadable note; its partial files were removed"
-    if note.get("to_head") in chained:
+    if isinstance(note.get("to_head"), str) and note["to_head"] in chained:
         return f"{who} had committed; the clean-up it did not finish was done"
     return f"{who} was interrupted before its commit point; its partial files were removed"
 
@@ -138,7 +161,7 @@ def pending_recovery(folder: Path, chained: set[str]) -> dict[str, Any] | None:
     if note is None:
         return None
     found, seen = [], note
-    while isinstance(seen, Mapping) and len(found) < 16:
+    while isinstance(seen, Mapping) and len(found) < _MAX_CARRIED:
         found.append(_describe(seen, chained))
         seen = seen.get("carries")
     return {"step": "recovered", "time": now(), "found": found}
@@ -178,6 +201,9 @@ def write_generation(folder: Path, files: Mapping[str, bytes], text: str,
                 raise WorkspaceError(f"{data_dir}: is not a folder of its own (a link or a "
                                      f"file), and a workspace's files must lie inside it; "
                                      f"replace it with the folder it stands for")
+            if (folder / PENDING).is_dir() and not (folder / PENDING).is_symlink():
+                raise WorkspaceError(f"{folder / PENDING}: is a folder, where colonnade keeps "
+                                     f"the note of an interrupted write; remove it")
             _write_durably(folder, PENDING, json.dumps(note).encode("utf-8"))
             if not data_dir.is_dir():
                 os.mkdir(data_dir)
@@ -186,6 +212,9 @@ def write_generation(folder: Path, files: Mapping[str, bytes], text: str,
                 target = data_dir / Path(stored_path(name, _sha_hex(data))).name
                 if target.is_file() and not target.is_symlink() and _holds(target, data):
                     continue
+                if target.is_dir() and not target.is_symlink():
+                    raise WorkspaceError(f"{target}: is a folder where colonnade keeps a data "
+                                         f"file, so nothing can be committed; remove it")
                 _write_durably(data_dir, target.name, data)
                 written.append(target)
             _fsync_dir(data_dir)

@@ -11,6 +11,15 @@ Two advisory locks (``flock``) on files inside the workspace:
   names; a writer takes it exclusively, without waiting, only to delete files an older
   generation named. If a reader holds it, the old files simply stay until a later commit.
 
+Both files must be regular files: one replaced by a FIFO would make ``open`` wait for a
+process that never comes, so they are opened without blocking and refused otherwise.
+
+The writer lock is held per thread: a second thread of the same process that saves to the
+workspace waits for the first, as a second process would (a flock conflicts between two
+opens of the file even within one process). A child forked while the lock is held (a
+DataLoader worker) closes its copy at once, so the lock never outlives the process that
+took it; the parent's copy keeps it held.
+
 ``flock`` works on local file systems of Linux and macOS; on network file systems its
 meaning depends on the server, which the README says.
 """
@@ -21,6 +30,8 @@ import errno
 import fcntl
 import os
 import socket
+import stat
+import threading
 import time
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
@@ -38,20 +49,45 @@ DEFAULT_WAIT = 5.0  # seconds a second writer waits before it gives up (--wait c
 _POLL = 0.1
 # Lock files are opened without following a symbolic link: a workspace from someone else
 # could otherwise point one at a file of the user's, which the holder's note overwrites.
-_OPEN = os.O_CLOEXEC | os.O_NOFOLLOW
+# O_NONBLOCK: a FIFO put in a lock file's place is not waited on (and then refused).
+_OPEN = os.O_CLOEXEC | os.O_NOFOLLOW | os.O_NONBLOCK
 
-# Writer locks this process holds, by real path: a verb holding the lock may call the
-# store's save, which takes it again (re-entrant within one process, never across two).
-_held: dict[str, int] = {}
+# Writer locks held, by real path and thread, with how often each is entered and its
+# descriptor: a verb holding the lock may call the store's save, which takes it again
+# (re-entrant within one thread, never across two threads or two processes).
+_held: dict[tuple[str, int], list[int]] = {}
 
 
-def _key(folder: Path) -> str:
-    return os.path.realpath(folder)
+def _key(folder: Path) -> tuple[str, int]:
+    return os.path.realpath(folder), threading.get_ident()
 
 
 def holds_writer_lock(folder: str | Path) -> bool:
-    """Whether this process already holds the writer lock of ``folder``."""
+    """Whether this thread already holds the writer lock of ``folder``."""
     return _key(Path(folder)) in _held
+
+
+def _forget_in_child() -> None:
+    """In a forked child: close the inherited lock descriptors, so that the lock is the
+    parent's alone and goes when the parent goes (a flock lasts while any copy is open)."""
+    for _, fd in _held.values():
+        try:
+            os.close(fd)
+        except OSError:
+            pass
+    _held.clear()
+
+
+os.register_at_fork(after_in_child=_forget_in_child)
+
+
+def _open_lock(path: Path, flags: int) -> int:
+    """Open a lock file, refusing anything but a regular file (OSError as ``os.open``)."""
+    fd = os.open(path, _OPEN | flags, 0o666)
+    if not stat.S_ISREG(os.fstat(fd).st_mode):
+        os.close(fd)
+        raise OSError(errno.EINVAL, "not a regular file", str(path))
+    return fd
 
 
 def _holder(fd: int) -> str:
@@ -70,19 +106,23 @@ def writer_lock(folder: str | Path, verb: str, wait: float | None = None,
     folder = Path(folder)
     key = _key(folder)
     if key in _held:
-        _held[key] += 1
+        _held[key][0] += 1
         try:
             yield
         finally:
-            _held[key] -= 1
+            if key in _held:
+                _held[key][0] -= 1
         return
     wait = DEFAULT_WAIT if wait is None else max(0.0, float(wait))
     try:
-        fd = os.open(folder / WRITER_LOCK, _OPEN | os.O_RDWR | os.O_CREAT, 0o666)
+        fd = _open_lock(folder / WRITER_LOCK, os.O_RDWR | os.O_CREAT)
     except OSError as exc:
         if exc.errno == errno.ELOOP:
             raise WorkspaceError(f"{folder / WRITER_LOCK}: is a symbolic link, which "
                                  f"colonnade never makes; remove it") from None
+        if exc.errno in (errno.EINVAL, errno.EISDIR):
+            raise WorkspaceError(f"{folder / WRITER_LOCK}: is not a regular file (a folder "
+                                 f"or a FIFO), which colonnade never makes; remove it") from None
         raise WorkspaceError(f"{folder}: cannot open its writer lock ({exc.strerror}); a "
                              f"workspace can only be changed where you may write") from None
     try:
@@ -107,17 +147,20 @@ def writer_lock(folder: str | Path, verb: str, wait: float | None = None,
         stamp = f"pid {os.getpid()} on host {socket.gethostname()} ({verb} since {now()})"
         os.ftruncate(fd, 0)
         os.pwrite(fd, stamp.encode("utf-8"), 0)
-        _held[key] = 1
+        _held[key] = [1, fd]
         try:
             yield
         finally:
-            del _held[key]
-            try:
-                os.ftruncate(fd, 0)
-            except OSError:
-                pass
+            if _held.pop(key, None) is None:
+                fd = -1  # a forked child: its copy was closed at the fork, the lock is not its
+            else:
+                try:
+                    os.ftruncate(fd, 0)
+                except OSError:
+                    pass
     finally:
-        os.close(fd)  # closing the last descriptor releases the flock
+        if fd >= 0:
+            os.close(fd)  # closing the last descriptor releases the flock
 
 
 @contextmanager
@@ -129,7 +172,7 @@ def reader_lock(folder: str | Path) -> Iterator[None]:
     """
     path = Path(folder) / READER_LOCK
     try:
-        fd = os.open(path, _OPEN | os.O_RDONLY)
+        fd = _open_lock(path, os.O_RDONLY)
     except OSError:
         yield
         return
@@ -144,7 +187,7 @@ def reader_lock(folder: str | Path) -> Iterator[None]:
 def try_collect_lock(folder: str | Path) -> Iterator[bool]:
     """The reader lock exclusively if no reader holds it now (True), else False at once."""
     try:
-        fd = os.open(Path(folder) / READER_LOCK, _OPEN | os.O_RDWR | os.O_CREAT, 0o666)
+        fd = _open_lock(Path(folder) / READER_LOCK, os.O_RDWR | os.O_CREAT)
     except OSError:
         yield False
         return

@@ -10,6 +10,7 @@ safe loader and tensors with safetensors: no code runs.
 
 from __future__ import annotations
 
+import copy
 import hashlib
 import os
 import shutil
@@ -33,7 +34,7 @@ from ..model.network import ProgressiveNet
 from ..model.schema import Spec
 from ..model.spec import load_spec, parse_spec
 from .commit import confined_stored, pending_recovery, write_generation
-from .lock import reader_lock, writer_lock
+from .lock import READER_LOCK, WRITER_LOCK, reader_lock, writer_lock
 from .manifest import FORMAT, MANIFEST, RESERVED, VERSION, WEIGHTS, manifest_text, read_manifest
 from .summary import network_summary
 
@@ -158,18 +159,28 @@ def save(net: ProgressiveNet, folder: str | Path, who: Attribution | None = None
             raise WorkspaceError(f"{folder}: changed since this network was loaded (another "
                                  f"process committed to it); load it again and repeat the "
                                  f"change, so nothing committed in between is lost")
-        manifest = _manifest_of(net, files)
-        recovered = pending_recovery(folder, _chained(current))
-        if recovered is not None:
-            history = manifest.setdefault("history", [])
-            history.insert(chained_prefix(history), recovered)
-        extend(manifest, who)
-        note = {"verb": who.verb, "by": who.author, "pid": os.getpid(),
-                "host": socket.gethostname(), "time": now(), "from_head": _head(current),
-                "to_head": _head(manifest)}
-        retired = set((current or {}).get("files") or {})
+        # The history is chained in place (the verb's own entries get their digests); a
+        # commit that fails before its commit point puts it back as it was, so a retry
+        # neither records a recovery twice nor keeps entries of a commit that never was.
+        history = net.meta.get("history")
+        before = copy.deepcopy(history) if isinstance(history, list) else None
+        manifest: dict[str, Any] = {}
         try:
+            manifest = _manifest_of(net, files)
+            recovered = pending_recovery(folder, _chained(current))
+            if recovered is not None:
+                listed = manifest.setdefault("history", [])
+                listed.insert(chained_prefix(listed), recovered)
+            extend(manifest, who)
+            note = {"verb": who.verb, "by": who.author, "pid": os.getpid(),
+                    "host": socket.gethostname(), "time": now(),
+                    "from_head": _head(current), "to_head": _head(manifest)}
+            retired = set((current or {}).get("files") or {})
             write_generation(folder, files, manifest_text(manifest), note, retired)
+        except BaseException:
+            if before is not None and _head(read_manifest(folder)) != _head(manifest):
+                history[:] = before
+            raise
         finally:
             net.meta[LOADED_HEAD] = _head(read_manifest(folder))
 
@@ -214,21 +225,37 @@ def create(spec_or_path: Any, folder: str | Path, net: ProgressiveNet | None = N
     else:
         spec = load_spec(spec_or_path)
     folder = Path(folder)
-    if folder.exists() and (not folder.is_dir() or any(folder.iterdir())):
-        raise WorkspaceError(f"{folder}: exists and is not an empty folder; choose a new "
-                             f"path or remove it first")
+    _require_empty(folder)
     if net is None:
         net = ProgressiveNet(spec)
         net.meta["history"].append({"step": "created", "time": now()})
-    made = not folder.exists()
+    who = who or Attribution(verb="new")
     try:
-        folder.mkdir(parents=True, exist_ok=True)
-        save(net, folder, who or Attribution(verb="new"))
-    except BaseException:
-        if made and not (folder / MANIFEST).exists():
-            shutil.rmtree(folder, ignore_errors=True)
-        raise
+        folder.mkdir(parents=True)
+        made = True
+    except FileExistsError:
+        made = False
+    # Emptiness is checked again under the writer lock: of two processes creating the
+    # same folder at once, the second finds the first one's workspace and stops, instead
+    # of replacing it while both say they created it.
+    with writer_lock(folder, who.verb or "new"):
+        try:
+            _require_empty(folder)
+            save(net, folder, who)
+        except BaseException:
+            if made and not (folder / MANIFEST).exists():
+                shutil.rmtree(folder, ignore_errors=True)
+            raise
     return net
+
+
+def _require_empty(folder: Path) -> None:
+    """Refuse a path that holds anything but an empty folder (or the lock files a create
+    that failed there left behind)."""
+    if folder.exists() and (not folder.is_dir() or any(
+            p.name not in (WRITER_LOCK, READER_LOCK) for p in folder.iterdir())):
+        raise WorkspaceError(f"{folder}: exists and is not an empty folder; choose a new "
+                             f"path or remove it first")
 
 
 def _locate(folder: Path, name: str, entry: Any, strict: bool) -> Path:
