@@ -60,7 +60,8 @@ os.umask(_UMASK)
 
 
 def stored_path(name: str, sha256: str) -> str:
-    """Where a listed file's content lives: ``data/<stem>.<sha256><ext>``."""
+    """Where a listed file's content lives: ``data/<stem>.<sha256><ext>``, or
+    ``data/<name>`` when the name holds its own SHA-256 already (kept probes)."""
     if not isinstance(sha256, str) or not _SHA.fullmatch(sha256):
         raise WorkspaceError(f"the manifest's digest of {str(name)[:80]!r} is not a SHA-256; "
                              f"it was edited by hand, restore the workspace from a copy you "
@@ -70,6 +71,8 @@ def stored_path(name: str, sha256: str) -> str:
         raise WorkspaceError(f"the manifest names the file {name[:80]!r}, which is not a plain "
                              f"name inside the workspace; it was edited by hand, restore the "
                              f"workspace from a copy you trust")
+    if sha256 in name:  # named by its digest already (a kept probe): not twice
+        return f"{DATA}/{name}"
     stem, dot, ext = name.partition(".")
     return f"{DATA}/{stem}.{sha256}{dot}{ext}"
 
