@@ -145,6 +145,20 @@ def test_a_lock_file_that_is_a_fifo_or_a_folder_is_never_waited_on(tmp_path):
         (ws / ".writer.lock").touch()
 
 
+def test_a_writer_lock_hard_linked_to_a_users_file_is_refused_and_the_file_kept(tmp_path):
+    """Before: the holder's note was written into the linked file and then emptied."""
+    ws = _ws(tmp_path / "ws")
+    victim = tmp_path / "notes.txt"
+    victim.write_text("a file of the user's\n")
+    os.unlink(ws / ".writer.lock")
+    os.link(victim, ws / ".writer.lock")
+    before = _listing(ws)
+    with pytest.raises(WorkspaceError, match="is a hard link to another file"):
+        store.save(_grown(ws), ws)
+    assert victim.read_text() == "a file of the user's\n"
+    assert _listing(ws) == before
+
+
 @pytest.mark.parametrize("note", [
     '{"carries":' * 100_000 + "{}" + "}" * 100_000,  # before: RecursionError traceback
     '{"carries":' * 900 + '{"verb": "grow"}' + "}" * 900,  # parses; was carried deeper

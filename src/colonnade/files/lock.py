@@ -11,8 +11,10 @@ Two advisory locks (``flock``) on files inside the workspace:
   names; a writer takes it exclusively, without waiting, only to delete files an older
   generation named. If a reader holds it, the old files simply stay until a later commit.
 
-Both files must be regular files: one replaced by a FIFO would make ``open`` wait for a
-process that never comes, so they are opened without blocking and refused otherwise.
+Both files must be regular files of one name: one replaced by a FIFO would make ``open``
+wait for a process that never comes, so they are opened without blocking and refused
+otherwise; a hard link would have the holder's note written into (and then emptied from)
+whatever file it shares.
 
 The writer lock is held per thread: a second thread of the same process that saves to the
 workspace waits for the first, as a second process would (a flock conflicts between two
@@ -82,11 +84,16 @@ os.register_at_fork(after_in_child=_forget_in_child)
 
 
 def _open_lock(path: Path, flags: int) -> int:
-    """Open a lock file, refusing anything but a regular file (OSError as ``os.open``)."""
+    """Open a lock file, refusing anything but a regular file of one name (OSError as
+    ``os.open``): the holder's note is written into the writer lock and emptied at the end,
+    so a hard link to a file of the user's (a workspace unpacked from someone's archive)
+    would empty that file."""
     fd = os.open(path, _OPEN | flags, 0o666)
-    if not stat.S_ISREG(os.fstat(fd).st_mode):
+    info = os.fstat(fd)
+    if not stat.S_ISREG(info.st_mode) or info.st_nlink > 1:
         os.close(fd)
-        raise OSError(errno.EINVAL, "not a regular file", str(path))
+        raise OSError(errno.EINVAL if info.st_nlink <= 1 else errno.EMLINK,
+                      "not a regular file of its own", str(path))
     return fd
 
 
@@ -120,6 +127,10 @@ def writer_lock(folder: str | Path, verb: str, wait: float | None = None,
         if exc.errno == errno.ELOOP:
             raise WorkspaceError(f"{folder / WRITER_LOCK}: is a symbolic link, which "
                                  f"colonnade never makes; remove it") from None
+        if exc.errno == errno.EMLINK:
+            raise WorkspaceError(f"{folder / WRITER_LOCK}: is a hard link to another file, "
+                                 f"which colonnade never makes and would overwrite; remove "
+                                 f"it") from None
         if exc.errno in (errno.EINVAL, errno.EISDIR):
             raise WorkspaceError(f"{folder / WRITER_LOCK}: is not a regular file (a folder "
                                  f"or a FIFO), which colonnade never makes; remove it") from None
