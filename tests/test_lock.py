@@ -186,3 +186,22 @@ def test_readers_never_see_a_commit_in_flight(small, tmp_path):
         stop.set()
         thread.join()
     assert commits and reads >= 5, (len(commits), reads)
+
+
+def test_a_commit_beside_a_reader_leaves_old_files_but_no_false_recovery(small, tmp_path):
+    """A reader holding the reader lock holds back the clean-up only: the next writer
+    collects the old files and records no 'recovered' entry for a commit that was whole."""
+    from colonnade.files.lock import reader_lock
+
+    ws = _copy(small, tmp_path)
+    net = store.load(ws)
+    net.attachments["extra.safetensors"] = {"k": torch.zeros(3)}
+    old = set(os.listdir(ws / "data"))
+    with reader_lock(ws):
+        store.save(net, ws)
+    assert old <= set(os.listdir(ws / "data"))  # nothing deleted under a reader
+    assert not (ws / ".pending").exists()
+    net.attachments["extra.safetensors"] = {"k": torch.ones(3)}
+    store.save(net, ws)
+    assert set(os.listdir(ws / "data")) == {p.name for p in store.listed_files(ws).values()}
+    assert [e.get("step") for e in store.load(ws).meta["history"]].count("recovered") == 0

@@ -273,12 +273,16 @@ _OWN = {MANIFEST, PENDING, WRITER_LOCK, READER_LOCK, DATA}
 def _collect(folder: Path, keep: set[str], retired: set[str]) -> None:
     """Delete what only older generations name, then the ``.pending`` note.
 
-    Skipped, and left to a later commit, while a reader holds the reader lock. Only files
+    Skipped, and left to a later commit, while a reader holds the reader lock (the note
+    goes all the same: the commit is whole, and an unnamed file is garbage to any later
+    commit, note or not). Only files
     colonnade writes are deleted: ``data/`` entries no generation in place names, its own
     temporary files, and the older layout's top-level files (``retired``, ``*.prev``).
     """
     with try_collect_lock(folder) as free:
-        if not free:
+        if not free:  # the commit is whole: say so, and let a later commit collect
+            os.unlink(folder / PENDING)
+            _fsync_dir(folder)
             return
         data_dir = folder / DATA
         for entry in os.scandir(data_dir):
