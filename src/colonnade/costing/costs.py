@@ -27,6 +27,7 @@ from dataclasses import dataclass, field
 
 import torch.nn as nn
 
+from ..model.adapters import JointAdapter
 from ..model.adopted import AdoptedColumn
 from ..model.layers import Shape
 from ..model.network import ProgressiveNet
@@ -58,7 +59,8 @@ ACTIVATION_RULE = ("peak activation memory: the largest total size of the tensor
                    "once during one batch-1 forward pass in colonnade's execution order "
                    "(columns left to right, in each column its layers in order, each "
                    "block's lateral adapters in source order after its weighted layer "
-                   "(a joint adapter first concatenates its sources), "
+                   "(a joint adapter first concatenates its sources; one that took in "
+                   "a tap adapter adds its bridged tap's map to V's output before U), "
                    "then the heads); the input counts, every layer writes a new tensor "
                    "except flatten, dropout and identity (views), and a tensor is freed "
                    "right after its last reader; returned logits stay alive to the end; an "
@@ -199,8 +201,8 @@ def _trace(net: ProgressiveNet, columns: Iterable[int], heads: Iterable[str],
         for b, block in enumerate(blocks):
             z, zshape = tr.layer(f"column {k} block {b} weighted", block.weighted, h, shape)
             for key, _ in net.adapters_into_block(k, b):
-                a = _trace_adapter(tr, net, key, [outs[j][net.adapter_reads(key, b - 1)][0] for j in
-                                                  net.adapter_sources(key)])
+                a = _trace_adapter(tr, net, key, [outs[j][net.adapter_reads(key, b - 1, j)][0]
+                                                  for j in net.adapter_sources(key)])
                 z = tr.op(f"column {k} block {b} lateral sum", (z, a), math.prod(zshape))
             h, shape = tr.layer(f"column {k} block {b} post", block.post, z, zshape)
             hs.append((h, shape))
@@ -210,7 +212,7 @@ def _trace(net: ProgressiveNet, columns: Iterable[int], heads: Iterable[str],
         h, shape = outs[col][net.head_reads(task)]
         logits, lshape = tr.layer(f"head {task}", net.heads[task], h, shape)
         for key, _ in net.adapters_into_head(task):
-            a = _trace_adapter(tr, net, key, [outs[j][net.adapter_reads(key, -1)][0]
+            a = _trace_adapter(tr, net, key, [outs[j][net.adapter_reads(key, -1, j)][0]
                                               for j in net.adapter_sources(key)])
             logits = tr.op(f"head {task} lateral sum", (logits, a), math.prod(lshape))
         tr.keep.add(logits)
@@ -220,6 +222,8 @@ def _trace(net: ProgressiveNet, columns: Iterable[int], heads: Iterable[str],
 def _trace_adapter(tr: _Trace, net: ProgressiveNet, key: str, sources: list[int]) -> int:
     adapter = net.adapters[key]
     shape = tuple(adapter.source_shape)
+    if isinstance(adapter, JointAdapter) and adapter.tap_shape is not None:
+        return _trace_tap_joint(tr, key, adapter, sources[0], sources[1:])
     if len(sources) == 1:
         t = sources[0]
     else:  # a joint adapter reads its sources concatenated: a new tensor
@@ -230,6 +234,22 @@ def _trace_adapter(tr: _Trace, net: ProgressiveNet, key: str, sources: list[int]
         else:
             t, shape = tr.layer(f"adapter {key} {name}", step, t, shape)
     return t
+
+
+def _trace_tap_joint(tr: _Trace, key: str, adapter: JointAdapter, tap: int,
+                     columns: list[int]) -> int:
+    """A joint adapter over a tap and columns: the columns concatenated (if several), V;
+    the tap's bridge and T; their sum; U (model.adapters.JointAdapter.forward)."""
+    shape = tuple(adapter.source_shape)
+    t = columns[0] if len(columns) == 1 else tr.op(f"adapter {key} concat", columns,
+                                                    math.prod(shape))
+    v, vshape = tr.layer(f"adapter {key} V", adapter.V, t, shape)
+    b, bshape = tap, tuple(adapter.tap_shape)
+    if adapter.tap_bridge is not None:
+        b, bshape = tr.layer(f"adapter {key} tap_bridge", adapter.tap_bridge, b, bshape)
+    b, _ = tr.layer(f"adapter {key} T", adapter.T, b, bshape)
+    z = tr.op(f"adapter {key} tap sum", (v, b), math.prod(vshape))
+    return tr.layer(f"adapter {key} U", adapter.U, z, vshape)[0]
 
 
 def peak_activation(net: ProgressiveNet, columns: Iterable[int], heads: Iterable[str],

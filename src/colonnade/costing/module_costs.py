@@ -12,7 +12,7 @@ import math
 
 import torch.nn as nn
 
-from ..model.adapters import LateralAdapter, LinearAdapter, NonlinearAdapter
+from ..model.adapters import JointAdapter, LateralAdapter, LinearAdapter, NonlinearAdapter
 from ..model.adopted import AdoptedColumn
 from ..model.layers import Shape
 from ..model.parts import Column
@@ -119,7 +119,16 @@ def adapter_steps(adapter: nn.Module) -> list[tuple[str, nn.Module | None]]:
 
 
 def adapter_macs(adapter: nn.Module) -> int:
-    """MACs of a lateral adapter on one sample of its source: its maps; alpha counts none."""
+    """MACs of a lateral adapter on one sample of its source: its maps; alpha counts none.
+    A joint adapter that reads a tap adds its tap's bridge and map T (model.adapters)."""
+    if isinstance(adapter, JointAdapter) and adapter.tap_shape is not None:
+        total = layer_macs(adapter.V, tuple(adapter.source_shape))
+        shape = tuple(adapter.tap_shape)
+        if adapter.tap_bridge is not None:
+            total += layer_macs(adapter.tap_bridge, shape)
+            shape = module_output_shape(adapter.tap_bridge, shape)
+        total += layer_macs(adapter.T, shape)
+        return total + layer_macs(adapter.U, module_output_shape(adapter.T, shape))
     shape, total = tuple(adapter.source_shape), 0
     for _, step in adapter_steps(adapter):
         if step is not None:

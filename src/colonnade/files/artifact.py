@@ -105,6 +105,14 @@ def _own_steps(key: str, module: nn.Module) -> list[dict[str, Any]]:
         order = [("module", "U")]
     elif type(module) is NonlinearAdapter:
         order = [("scale", "alpha"), ("module", "V"), ("module", "act"), ("module", "U")]
+    elif type(module) is JointAdapter and module.tap_shape is not None:
+        # V on the columns, plus the tap's branch (its bridge, then T), then U.
+        branch = [("module", "T")]
+        if module.tap_bridge is not None:
+            branch.insert(0, ("module", "tap_bridge"))
+        return [*_named_steps(module, [("module", "V")]),
+                {"op": "add_branch", "steps": _named_steps(module, branch)},
+                *_named_steps(module, [("module", "U")])]
     elif type(module) is JointAdapter:
         order = [("module", "V"), ("module", "U")]
     elif callable(getattr(module, "export_steps", None)):
@@ -112,6 +120,10 @@ def _own_steps(key: str, module: nn.Module) -> list[dict[str, Any]]:
     else:
         raise ExportError(f"adapter {key} of kind {type(module).__name__} cannot be exported; "
                           f"give it an export_steps() method (see files/artifact.py)")
+    return _named_steps(module, order)
+
+
+def _named_steps(module: nn.Module, order: list[tuple[str, str]]) -> list[dict[str, Any]]:
     steps = []
     for op, name in order:
         if op == "scale":
@@ -133,7 +145,8 @@ def adopted_description(col: AdoptedColumn) -> dict[str, Any]:
 
 
 def _tap_read(net: ProgressiveNet, key: str) -> int | None:
-    """The tap index an adapter reads of an adopted column, or None (the usual block)."""
+    """The tap index an adapter reads of the adopted column (column 0), or None (the usual
+    block). A joint adapter reads its other sources' usual block (``standalone``)."""
     tap = net.adapter_info[key].extra.get("tap")
     return None if tap is None else int(tap)
 

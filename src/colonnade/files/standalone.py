@@ -63,12 +63,22 @@ def build_layer(desc: dict[str, Any]) -> nn.Module:
 
 
 class _Steps(nn.Module):
-    """A lateral adapter as ordered steps: multiply by a named scalar, or apply a layer."""
+    """A lateral adapter as ordered steps: multiply by a named scalar, apply a layer, or
+    add a branch (steps of its own) run on the adapter's second input: a joint adapter
+    that reads an adopted column's tap beside other columns (colonnade's JointAdapter:
+    ``U (V h + T bridge(tap))``). Every step's name is its key in the state."""
 
     def __init__(self, steps: list[dict[str, Any]]) -> None:
         super().__init__()
-        self.order: list[tuple[str, str]] = []
+        self.order = self._add(steps)
+        self.branched = any(op == "add_branch" for op, _ in self.order)
+
+    def _add(self, steps: list[dict[str, Any]]) -> list[tuple[str, Any]]:
+        order: list[tuple[str, Any]] = []
         for step in steps:
+            if step["op"] == "add_branch":
+                order.append(("add_branch", self._add(step["steps"])))
+                continue
             name = step["name"]
             if step["op"] == "scale":
                 self.register_parameter(name, nn.Parameter(torch.empty(step["shape"])))
@@ -76,12 +86,20 @@ class _Steps(nn.Module):
                 self.add_module(name, build_layer(step["layer"]))
             else:
                 raise ValueError(f"unknown adapter step {step['op']!r}")
-            self.order.append((step["op"], name))
+            order.append((step["op"], name))
+        return order
 
-    def forward(self, h: torch.Tensor) -> torch.Tensor:
-        for op, name in self.order:
-            h = getattr(self, name) * h if op == "scale" else getattr(self, name)(h)
+    def _run(self, order: list[tuple[str, Any]], h: torch.Tensor,
+             branch: torch.Tensor | None) -> torch.Tensor:
+        for op, name in order:
+            if op == "add_branch":
+                h = h + self._run(name, branch, None)
+            else:
+                h = getattr(self, name) * h if op == "scale" else getattr(self, name)(h)
         return h
+
+    def forward(self, h: torch.Tensor, branch: torch.Tensor | None = None) -> torch.Tensor:
+        return self._run(self.order, h, branch)
 
 
 class _Block(nn.Module):
@@ -215,7 +233,9 @@ class ArtifactModel(nn.Module):
         self.adapters = nn.ModuleDict()
         self.into: dict[tuple[int, int], list[tuple[str, list[int]]]] = {}
         self.into_head: dict[str, list[tuple[str, list[int]]]] = {t: [] for t in self.tasks}
-        # An adapter reading an adopted column's tap: the index of that tap.
+        # An adapter reading an adopted column's tap: the index of that tap. A joint
+        # adapter's first source is then the adopted column, read there and passed to its
+        # branch (``_Steps``); its other sources read the usual block.
         self.reads: dict[str, int] = {}
         for a in architecture["adapters"]:  # in the order the grown network adds them
             self.adapters[a["key"]] = _Steps(a["steps"])
@@ -245,10 +265,14 @@ class ArtifactModel(nn.Module):
     def _lateral(self, key: str, sources: list[int], outs: dict[int, list[torch.Tensor]],
                  index: int) -> torch.Tensor:
         """One adapter's output; a joint adapter reads its sources concatenated."""
-        index = self.reads.get(key, index)
+        adapter = self.adapters[key]
         if len(sources) == 1:
-            return self.adapters[key](outs[sources[0]][index])
-        return self.adapters[key](torch.cat([outs[j][index] for j in sources], dim=1))
+            return adapter(outs[sources[0]][self.reads.get(key, index)])
+        if adapter.branched:  # sources (tap, columns...): the tap goes to the branch
+            tap = outs[sources[0]][self.reads[key]]
+            rest = [outs[j][index] for j in sources[1:]]
+            return adapter(rest[0] if len(rest) == 1 else torch.cat(rest, dim=1), tap)
+        return adapter(torch.cat([outs[j][index] for j in sources], dim=1))
 
     def forward(self, x: torch.Tensor, *given: torch.Tensor) -> tuple[torch.Tensor, ...]:
         """Every task's logits; ``given`` holds the outputs of the ``given`` columns."""

@@ -24,7 +24,7 @@ from .layers import Shape, make_activation
 from .schema import Conv1d, Conv2d, LayerSpec
 
 __all__ = ["LateralAdapter", "LinearAdapter", "NonlinearAdapter", "JointAdapter",
-           "make_adapter", "rebuild_joint"]
+           "make_adapter", "build_joint", "rebuild_joint"]
 
 
 def _target_map(target: LayerSpec, in_channels: int, out_channels: int) -> nn.Module:
@@ -124,31 +124,66 @@ class JointAdapter(LateralAdapter):
     V carries the target layer's kernel, stride and padding (a plain matrix for dense
     targets), U is pointwise, so at full rank the pair equals any sum of linear adapters
     from those columns exactly. Sources are concatenated along the feature (channel) axis.
+
+    A merge that takes in an adapter reading an adopted column's tap keeps that tap's own
+    shape bridge (model.bridges): the tap is bridged to the target's output positions, as
+    its adapter did, and a pointwise map T takes it to the same rank, so the joint map is
+    U (V [h_1; ...; h_n] + T bridge(tap)) -- one matrix [V T] over the concatenated
+    features of every output position, the columns' kernel windows beside the bridged
+    tap. ``forward(h, tap)`` then takes the tap (unbridged) as its second input.
     """
 
     kind = "joint"
 
     def __init__(self, source_shapes: list[Shape], target_shape: Shape, target: LayerSpec,
-                 rank: int) -> None:
+                 rank: int, tap_shape: Shape | None = None, tap_bridge: nn.Module | None = None,
+                 bridged_tap: Shape | None = None) -> None:
         channels = sum(int(s[0]) for s in source_shapes)
         super().__init__((channels, *source_shapes[0][1:]), target_shape)
         self.source_shapes = [tuple(s) for s in source_shapes]
         self.rank = int(rank)
         self.V = _target_map(target, channels, self.rank)
+        # The tap's part, registered between V and U (the order in which they run).
+        self.tap_shape = None if tap_shape is None else tuple(tap_shape)
+        if tap_shape is not None:
+            self.tap_bridge = tap_bridge
+            self.bridged_tap = tuple(bridged_tap or tap_shape)
+            self.T = _pointwise(target, self.bridged_tap[0], self.rank)
         self.U = _pointwise(target, self.rank, target_shape[0])
 
-    def forward(self, h: torch.Tensor) -> torch.Tensor:
-        return self.U.forward(self.V.forward(h))  # see LinearAdapter.forward
+    def forward(self, h: torch.Tensor, tap: torch.Tensor | None = None) -> torch.Tensor:
+        if self.tap_shape is None:
+            return self.U.forward(self.V.forward(h))  # see LinearAdapter.forward
+        t = tap if self.tap_bridge is None else self.tap_bridge(tap)
+        return self.U.forward(self.V.forward(h) + self.T.forward(t))
 
     def extra_repr(self) -> str:
-        return f"{super().extra_repr()}, sources={len(self.source_shapes)}, rank={self.rank}"
+        tap = "" if self.tap_shape is None else f", tap {list(self.tap_shape)}"
+        return (f"{super().extra_repr()}, sources={len(self.source_shapes)}{tap}, "
+                f"rank={self.rank}")
+
+
+def build_joint(net, sources: tuple[int, ...], column: int | None, block: int | None,  # noqa: ANN001
+                head: str | None, rank: int, tap: int | None = None) -> JointAdapter:
+    """The joint adapter over ``sources`` into one layer (a ProgressiveNet's geometry);
+    with ``tap``, source column 0 is an adopted column read at that tap."""
+    if tap is None:
+        shapes, target_shape, target = net.lateral_geometry(sources, column, block, head)
+        return JointAdapter(shapes, target_shape, target, rank)
+    if net.adopted is None or not sources or sources[0] != 0:
+        raise ValueError("a joint adapter reads a tap only of an adopted column 0")
+    rest = tuple(s for s in sources if s != 0)
+    shapes, target_shape, target = net.lateral_geometry(rest, column, block, head)
+    where = f"head {head}" if head is not None else f"block {block}"
+    tap_shape, bridge, bridged = net.tap_bridge(int(tap), target_shape, where)
+    return JointAdapter(shapes, target_shape, target, rank, tap_shape, bridge, bridged)
 
 
 def rebuild_joint(net, info) -> JointAdapter:  # noqa: ANN001 (a ProgressiveNet, AdapterInfo)
-    """Rebuild a joint adapter from its manifest record (``extra``: sources, rank)."""
-    shapes, target_shape, target = net.lateral_geometry(info.sources, info.column,
-                                                        info.block, info.head)
-    return JointAdapter(shapes, target_shape, target, int(info.extra["rank"]))
+    """Rebuild a joint adapter from its manifest record (``extra``: sources, rank, tap)."""
+    tap = info.extra.get("tap")
+    return build_joint(net, info.sources, info.column, info.block, info.head,
+                       int(info.extra["rank"]), None if tap is None else int(tap))
 
 
 def make_adapter(kind: str, source_shape: Shape, target_shape: Shape, target: LayerSpec,

@@ -71,18 +71,28 @@ class AdoptionMixin:
         info = self.task(task)
         return len(self.columns[info.column].blocks) + self._head_input(info)
 
-    def adapter_reads(self, key: str, index: int) -> int:
-        """The output index a live adapter reads of its sources: ``index`` (``b - 1`` into
-        block ``b``, the last into a head), or its tap of an adopted column."""
-        return self._tap_index.get(key, index)
+    def adapter_reads(self, key: str, index: int, source: int) -> int:
+        """The output index a live adapter reads of its source column ``source``:
+        ``index`` (``b - 1`` into block ``b``, the last into a head), or, where the source
+        is the adopted column (always column 0), the adapter's tap of it. A joint adapter
+        made by a merge reads its tap of column 0 and the usual output of every other
+        column."""
+        return self._tap_index.get(key, index) if source == 0 else index
 
     # ----------------------------------------------------------------- parts reading taps
+    def tap_bridge(self, tap: int, target_shape: Shape, where: str,
+                   ) -> tuple[Shape, nn.Module | None, Shape]:
+        """Tap ``tap``'s shape, the bridge from it to ``target_shape`` (model.bridges, by
+        the spec's ``lateral.bridge``) and the shape the bridge gives."""
+        tap_shape = tuple(self.columns[0].record.tap_shapes[tap])
+        bridge, bridged = bridge_for(tap_shape, target_shape, self.spec.lateral.bridge, where)
+        return tap_shape, bridge, bridged
+
     def _tap_adapter(self, kind: str, tap: int, target_shape: Shape, target: Any,
                      where: str) -> tuple[dict[str, Any], LateralAdapter]:
         """An adapter reading tap ``tap`` of the adopted column through a shape bridge."""
         lat = self.spec.lateral
-        tap_shape = tuple(self.columns[0].record.tap_shapes[tap])
-        bridge, bridged = bridge_for(tap_shape, target_shape, lat.bridge, where)
+        tap_shape, bridge, bridged = self.tap_bridge(tap, target_shape, where)
         module = make_adapter(kind, tap_shape, target_shape,
                               bridged_target(target, target_shape), lat.reduce,
                               lat.activation, bridge, bridged)

@@ -194,3 +194,9 @@ def _check_sizes(spec: Spec, arch: dict[str, Any]) -> None:
             _int(extra["rank"], f"adapters[{i}].extra.rank", 1, MAX_SIZE)
         for j, source in enumerate(extra.get("sources") or []):
             _int(source, f"adapters[{i}].extra.sources[{j}]", 0, last)
+        if "tap" in extra:  # an index into the adopted column's taps
+            taps = (arch.get("adopted") or {}).get("taps") or []
+            if not taps:
+                raise _refuse(f"adapters[{i}].extra.tap", "no tap (the network has no "
+                              "adopted column)", extra["tap"])
+            _int(extra["tap"], f"adapters[{i}].extra.tap", 0, len(taps) - 1)

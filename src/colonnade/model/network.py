@@ -212,11 +212,17 @@ class ProgressiveNet(ClosureQueries, GrowthEdits, ArchitectureRecord, AdoptionMi
 
     def _lateral(self, key: str, outs: dict[int, list[torch.Tensor]], index: int,
                  ) -> torch.Tensor:
-        """One adapter's output; a joint adapter reads its sources concatenated."""
+        """One adapter's output; a joint adapter reads its sources concatenated, and one
+        that took in a tap adapter reads that tap (of column 0) as its second input."""
         sources = self._sources[key]
-        index = self.adapter_reads(key, index)
         if len(sources) == 1:
-            return self.adapters[key](outs[sources[0]][index])
+            return self.adapters[key](outs[sources[0]][self.adapter_reads(key, index,
+                                                                          sources[0])])
+        if key in self._tap_index:  # sources (0, j, ...): the tap, then the columns
+            tap = outs[0][self._tap_index[key]]
+            rest = [outs[s][index] for s in sources[1:]]
+            return self.adapters[key](rest[0] if len(rest) == 1 else torch.cat(rest, dim=1),
+                                      tap)
         return self.adapters[key](torch.cat([outs[s][index] for s in sources], dim=1))
 
     def forward(self, x: torch.Tensor, task: str | None = None,

@@ -67,10 +67,10 @@ def needed_outputs(net: ProgressiveNet, task: str) -> dict[int, tuple[int, ...]]
             for key, _ in net.adapters_into_block(k, b):
                 for j in net.adapter_sources(key):  # several for a joint adapter
                     if j in constant:
-                        needed.setdefault(j, set()).add(net.adapter_reads(key, b - 1))
+                        needed.setdefault(j, set()).add(net.adapter_reads(key, b - 1, j))
     info = net.task(task)
     readers = [(info.column, net.head_reads(task))] + [
-        (j, net.adapter_reads(key, len(net.columns[j].blocks) - 1))
+        (j, net.adapter_reads(key, len(net.columns[j].blocks) - 1, j))
         for key, _ in net.adapters_into_head(task) for j in net.adapter_sources(key)]
     for j, index in readers:
         if j in constant:

@@ -20,6 +20,11 @@ column space of X, the relative error on the data is, exactly,
 For linear adapters y is linear in h, so at full rank the fit is exact (up to float
 rounding); for nonlinear adapters W is the best joint low-rank *linear* map to their
 summed outputs, and err says how far it is.
+
+An adapter reading an adopted column's tap (model.bridges) joins the merge with its own
+shape bridge: its rows are the bridged tap at each output position, set beside the other
+columns' kernel windows, and the joint adapter keeps the bridge (``JointAdapter``'s tap
+part, T). The tap adapter's map is linear in the bridged tap, so the same exactness holds.
 """
 
 from __future__ import annotations
@@ -30,7 +35,7 @@ from dataclasses import dataclass
 import torch
 import torch.nn.functional as F
 
-from ..model.adapters import JointAdapter
+from ..model.adapters import JointAdapter, build_joint
 from ..model.network import AdapterInfo, ProgressiveNet
 from ..model.schema import Conv1d, Conv2d
 from ..training.fit import EVAL_BATCH
@@ -54,6 +59,9 @@ class JointFit:
     y_norm: float  # ||Y||_F
     rows: int  # rows of X (samples x output positions)
     params_replaced: int
+    tap: int | None = None  # the tap of column 0 that one of the adapters read, if any
+    tap_name: str | None = None
+    tap_features: int = 0  # trailing rows of W: the bridged tap's features (T's inputs)
 
     @property
     def full_rank(self) -> int:
@@ -71,14 +79,16 @@ class JointFit:
         """The joint adapter at ``rank``, weights set, on the net's device and dtype."""
         if not 1 <= rank <= self.full_rank:
             raise ValueError(f"rank must be in 1..{self.full_rank}, got {rank}")
-        shapes, target_shape, target = net.lateral_geometry(tuple(self.sources), self.column,
-                                                            self.block, self.head)
-        module = JointAdapter(shapes, target_shape, target, rank)
+        module = build_joint(net, tuple(self.sources), self.column, self.block, self.head,
+                             rank, self.tap)
         Br = self.B[:, :rank]  # (O, r)
-        V = (self.W @ Br).T  # (r, P)
+        V = (self.W @ Br).T  # (r, P): the columns' windows, then the bridged tap
+        split = V.shape[1] - self.tap_features
         ref = next(net.parameters())
         with torch.no_grad():
-            module.V.weight.copy_(V.reshape(module.V.weight.shape))
+            module.V.weight.copy_(V[:, :split].reshape(module.V.weight.shape))
+            if self.tap is not None:
+                module.T.weight.copy_(V[:, split:].reshape(module.T.weight.shape))
             module.U.weight.copy_(Br.reshape(module.U.weight.shape))
         return module.to(device=ref.device, dtype=ref.dtype)
 
@@ -126,7 +136,13 @@ def fit_joint(net: ProgressiveNet, task: str, keys: list[str], x: torch.Tensor) 
     keys = [keys[i] for i in order]
     sources = [infos[i].source for i in order]
     column, block, head = targets.pop()
-    _, _, target = net.lateral_geometry(tuple(sources), column, block, head)
+    taps = [k for k in keys if "tap" in net.adapter_info[k].extra]
+    if len(taps) > 1 or len(taps) == len(keys):
+        raise ValueError("a merge takes at most one adapter reading a tap, beside others")
+    tap = int(net.adapter_info[taps[0]].extra["tap"]) if taps else None
+    columns = [k for k in keys if k not in taps]  # source order; the tap (column 0) apart
+    _, _, target = net.lateral_geometry(tuple(s for s in sources if not taps or s != 0),
+                                        column, block, head)
 
     inputs: dict[str, torch.Tensor] = {}
     outputs: dict[str, torch.Tensor] = {}
@@ -145,13 +161,21 @@ def fit_joint(net: ProgressiveNet, task: str, keys: list[str], x: torch.Tensor) 
         handles.append(net.adapters[key].register_forward_pre_hook(pre))
         handles.append(net.adapters[key].register_forward_hook(post))
     acc = _Triangular()
+    tap_features = 0
     was_training = net.training
     net.eval()
     try:
         for i in range(0, x.shape[0], EVAL_BATCH):
             net(x[i:i + EVAL_BATCH].to(net.device), task=task)
-            h = torch.cat([inputs[k] for k in keys], dim=1).double().cpu()
-            acc.add(_patches(h, target), _rows(sum(outputs[k].double() for k in keys).cpu()))
+            h = torch.cat([inputs[k] for k in columns], dim=1).double().cpu()
+            X = _patches(h, target)
+            if taps:  # the tap through its adapter's own bridge, one row per position
+                bridge = net.adapters[taps[0]].bridge
+                t = inputs[taps[0]] if bridge is None else bridge(inputs[taps[0]])
+                rows = _rows(t.double().cpu())
+                tap_features = rows.shape[1]
+                X = torch.cat([X, rows], dim=1)
+            acc.add(X, _rows(sum(outputs[k].double() for k in keys).cpu()))
     finally:
         for handle in handles:
             handle.remove()
@@ -162,8 +186,10 @@ def fit_joint(net: ProgressiveNet, task: str, keys: list[str], x: torch.Tensor) 
     _, s, Bt = torch.linalg.svd(Rxx @ W, full_matrices=False)  # same s, B as X W
     rank = min(Rxx.shape[0], Rxy.shape[1], acc.rows)
     params = sum(p.numel() for k in keys for p in net.adapters[k].parameters())
+    tap_name = net.adapter_info[taps[0]].extra.get("tap_name") if taps else None
     return JointFit(keys, sources, column, block, head, W, Bt[:rank].T.contiguous(), s[:rank],
-                    residual, math.sqrt(acc.y_sq), acc.rows, params)
+                    residual, math.sqrt(acc.y_sq), acc.rows, params, tap, tap_name,
+                    tap_features)
 
 
 class _Triangular:
@@ -213,6 +239,8 @@ def install_joint(net: ProgressiveNet, fit: JointFit, rank: int,
     info = AdapterInfo(key, "joint", fit.sources[0], column=fit.column, block=fit.block,
                        head=fit.head, extra={"sources": list(fit.sources), "rank": int(rank),
                                              "merged_from": list(fit.keys), **(extra or {})})
+    if fit.tap is not None:  # column 0 is read at this tap (model.adoption.adapter_reads)
+        info.extra.update(tap=fit.tap, tap_name=fit.tap_name)
     net.adapters[key] = module
     net.adapter_info[key] = info
     net._reindex()

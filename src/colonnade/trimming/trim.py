@@ -241,30 +241,15 @@ class _Tuner:
         return evaluate(net, self.task, self.x, self.y)
 
 
-def tap_merge_refusal(net: ProgressiveNet, key: str) -> str:
-    """Why an adapter reading an adopted column's tap is not merged, in one sentence."""
-    extra = net.adapter_info[key].extra
-    return (f"it reads the adopted model's tap {extra.get('tap_name')!r}, a different output "
-            f"of column 0 than the block the other columns' adapters read, through its own "
-            f"shape bridge (pooling, flattening or resampling), so its input cannot be "
-            f"concatenated with theirs into one joint adapter; it is kept as it is and can "
-            f"still be pruned")
-
-
 def _merge_pass(net: ProgressiveNet, report: TrimReport, owned: list[str],
                 x: torch.Tensor, y: torch.Tensor) -> None:
     """Fold each layer's remaining single-source adapters into one joint adapter."""
     by_layer: dict[str, list[str]] = {}
-    taps: dict[str, list[str]] = {}
     for key, layer, _ in task_adapters(net, report.task):
         if key in owned and len(net.adapter_sources(key)) == 1:
-            # Adapters reading an adopted column's taps are pruned, never merged.
-            group = taps if "tap" in net.adapter_info[key].extra else by_layer
-            group.setdefault(layer, []).append(key)
-    for layer, keys in taps.items():
-        if by_layer.get(layer):  # a merge with the layer's other adapters was possible
-            report.merges_rejected.append({"adapters": keys, "layer": layer,
-                                           "reason": tap_merge_refusal(net, keys[0])})
+            # An adapter reading an adopted column's tap joins too, with its own shape
+            # bridge (merge.py); a layer has at most one (only column 0 is adopted).
+            by_layer.setdefault(layer, []).append(key)
     for layer, keys in by_layer.items():
         if len(keys) < 2 or _target_met(report, net):
             continue
@@ -309,7 +294,8 @@ def _merge_pass(net: ProgressiveNet, report: TrimReport, owned: list[str],
             macs_before - costs.adapter_macs(module),
             {"into": key, "rank": rank, "full_rank": fit.full_rank, "error": fit.error(rank),
              "accuracy_change_points": 100.0 * (acc - before_acc), "layer": layer,
-             "sources": list(fit.sources)}))
+             "sources": list(fit.sources),
+             **({"tap": fit.tap_name} if fit.tap is not None else {})}))
 
 
 def trim(net: ProgressiveNet, task: str, data: TaskData, max_drop: float = 0.5,

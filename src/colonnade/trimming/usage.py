@@ -232,8 +232,8 @@ def measure(net: ProgressiveNet, task: str, x: torch.Tensor, y: torch.Tensor,
         targets.setdefault(layer, []).append(key)
     outputs: dict[str, torch.Tensor] = {}  # this batch: adapter key or layer -> output
     sums: dict[str, torch.Tensor] = {}
-    moments: dict[str, list[torch.Tensor]] = {}
-    counts: dict[str, int] = {}
+    moments: dict[tuple[str, int], list[torch.Tensor]] = {}
+    counts: dict[tuple[str, int], int] = {}
     share_sum = {k: 0.0 for k, _, _ in feeding}
     varying_sum = {k: 0.0 for k, _, _ in feeding}
 
@@ -243,16 +243,18 @@ def measure(net: ProgressiveNet, task: str, x: torch.Tensor, y: torch.Tensor,
         return hook
 
     def keep_moments(key: str):
+        # Per input (a joint adapter that reads a tap has two: its columns and its tap).
         def hook(module, inputs):
-            h = inputs[0].detach().double()
-            dims = [d for d in range(h.dim()) if d != 1]
-            s, s2 = h.sum(dims), (h * h).sum(dims)
-            if key in moments:
-                moments[key][0] += s
-                moments[key][1] += s2
-            else:
-                moments[key] = [s, s2]
-            counts[key] = counts.get(key, 0) + h.numel() // h.shape[1]
+            for i, h in enumerate(inputs):
+                h = h.detach().double()
+                dims = [d for d in range(h.dim()) if d != 1]
+                s, s2 = h.sum(dims), (h * h).sum(dims)
+                if (key, i) in moments:
+                    moments[(key, i)][0] += s
+                    moments[(key, i)][1] += s2
+                else:
+                    moments[(key, i)] = [s, s2]
+                counts[(key, i)] = counts.get((key, i), 0) + h.numel() // h.shape[1]
         return hook
 
     def add_sums() -> None:
@@ -309,17 +311,21 @@ def measure(net: ProgressiveNet, task: str, x: torch.Tensor, y: torch.Tensor,
     # Perturbation: noise scaled to each input feature's variance on the data.
     gen = torch.Generator().manual_seed(seed)
     for key, _, _ in feeding:
-        s, s2 = moments[key]
-        mean = s / counts[key]
-        std = (s2 / counts[key] - mean * mean).clamp_min(0.0).sqrt()
+        stds = []
+        for i in range(sum(1 for k, _ in moments if k == key)):
+            s, s2 = moments[(key, i)]
+            mean = s / counts[(key, i)]
+            stds.append((s2 / counts[(key, i)] - mean * mean).clamp_min(0.0).sqrt())
 
-        def add_noise(module, inputs, std=std):
-            h = inputs[0]
-            shape = [1] * h.dim()
-            shape[1] = h.shape[1]
-            scale = (noise * std).to(h.dtype).reshape(shape).to(h.device)
-            eps = torch.randn(h.shape, generator=gen, dtype=h.dtype).to(h.device)
-            return (h + eps * scale,)
+        def add_noise(module, inputs, stds=stds):
+            noisy = []
+            for h, std in zip(inputs, stds, strict=True):
+                shape = [1] * h.dim()
+                shape[1] = h.shape[1]
+                scale = (noise * std).to(h.dtype).reshape(shape).to(h.device)
+                eps = torch.randn(h.shape, generator=gen, dtype=h.dtype).to(h.device)
+                noisy.append(h + eps * scale)
+            return tuple(noisy)
 
         drops, rises = [], []
         for _ in range(repeats):

@@ -277,7 +277,9 @@ def build_graph(net: ProgressiveNet) -> nx.DiGraph:
         G.graph["adapters"][key] = dict(figures)
         sources = _sources(net, key)
         for n, j in enumerate(sources):
-            tap = a.extra.get("tap") if isinstance(a.extra, dict) else None
+            # A tap is read of the adopted column 0 only; a joint adapter's other sources
+            # read their usual block.
+            tap = a.extra.get("tap") if isinstance(a.extra, dict) and j == 0 else None
             if a.head is not None:
                 u, v = (last[j] if tap is None else ends[j][tap]), f"head_{a.head}"
             else:
