@@ -381,3 +381,36 @@ def test_sigterm_at_each_step_of_a_recovery_loses_nothing(tmp_path):
         assert not (ws / ".pending").exists() and verify_record(ws).findings == []
         held += 1
     assert held > 5
+
+
+def test_a_network_loaded_over_a_changed_file_is_never_saved(tmp_path):
+    """``load(strict=False)`` (what ``check`` uses) loads a file changed outside colonnade
+    so that it can be named; before, saving that network gave the changed bytes a fresh
+    digest and head, and ``check`` passed afterwards."""
+    ws = _ws(tmp_path / "ws")
+    (weights,) = (ws / "data").iterdir()
+    damaged = bytearray(weights.read_bytes())
+    damaged[-1] ^= 1
+    weights.write_bytes(bytes(damaged))
+    net = store.load(ws, strict=False)
+    assert net.meta["_mismatched"] == ["weights.safetensors"]
+    before = _listing(ws)
+    with pytest.raises(WorkspaceError, match="refusing to save a network whose file"):
+        store.save(net, ws)
+    assert _listing(ws) == before
+    assert "does not match" in verify_record(ws).findings[0].message
+
+
+def test_a_network_loaded_over_a_hand_edited_manifest_is_never_saved(tmp_path):
+    """Before: a section added to the manifest by hand, loaded with strict=False and saved,
+    was bound to a fresh head, and ``check`` passed on the forged section afterwards."""
+    ws = _ws(tmp_path / "ws")
+    text = (ws / "manifest.yaml").read_text()
+    assert "records: {}" in text
+    (ws / "manifest.yaml").write_text(text.replace("records: {}", "records: {t0: {by: forged}}"))
+    net = store.load(ws, strict=False)
+    before = _listing(ws)
+    with pytest.raises(WorkspaceError, match="from a record that does not verify"):
+        store.save(net, ws)
+    assert _listing(ws) == before
+    assert any("records/t0" in f.message for f in verify_record(ws).findings)

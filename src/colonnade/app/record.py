@@ -23,7 +23,7 @@ from ..evidence.signing import key_id, load_signer, load_trusted, new_key_pems
 from ..files.limits import MAX_MANIFEST_BYTES, read_bounded, sha256_file
 from ..files.lock import reader_lock, writer_lock
 from ..files.manifest import MANIFEST, manifest_text, read_manifest
-from ..files.store import listed_path, save
+from ..files.store import UNVERIFIED, listed_path, save
 from ..training.data import load_for_spec
 from ..training.sources import source_digest
 from .transaction import attribution, read_workspace, tell_waiting, wait_seconds
@@ -120,6 +120,7 @@ def start_record(folder: str | Path, reason: str, by: str | None = None,
                              f"to start; run 'colonnade check {folder}' to verify it")
         net = read_workspace(folder, strict=False)
         changed = net.meta.pop("_mismatched", [])
+        net.meta.pop(UNVERIFIED, None)  # a record made before the chain never verifies
         if changed:
             raise WorkspaceError(f"{folder}: file {changed[0]} does not match the SHA-256 "
                                  f"its manifest records, so it was changed outside colonnade "

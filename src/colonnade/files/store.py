@@ -39,10 +39,12 @@ from .manifest import FORMAT, MANIFEST, RESERVED, VERSION, WEIGHTS, manifest_tex
 from .summary import network_summary
 
 __all__ = ["create", "save", "load", "atomic_write", "read_manifest", "listed_files",
-           "listed_path", "LOADED_HEAD", "MANIFEST", "WEIGHTS"]
+           "listed_path", "LOADED_HEAD", "UNVERIFIED", "MANIFEST", "WEIGHTS"]
 
 # The record head a network was loaded at; ``save`` refuses when the workspace moved on.
 LOADED_HEAD = "_loaded_head"
+# The first finding of a record that did not verify, when loaded with strict=False.
+UNVERIFIED = "_unverified_record"
 
 _UMASK = os.umask(0)
 os.umask(_UMASK)
@@ -150,6 +152,19 @@ def save(net: ProgressiveNet, folder: str | Path, who: Attribution | None = None
         raise WorkspaceError(f"{folder}: no such workspace folder; create one with "
                              f"'colonnade new SPEC -o {folder}'")
     verify_unchanged(net)  # a sealed closure that moved is never written
+    # Loaded with strict=False (as ``check`` loads): a commit would bind what was changed
+    # outside colonnade to a fresh head, and ``check`` would pass on it afterwards.
+    changed = net.meta.get("_mismatched")
+    if changed:
+        raise WorkspaceError(f"{folder}: refusing to save a network whose file "
+                             f"{changed[0]} did not match the SHA-256 its manifest records "
+                             f"when it was loaded; a commit would record the changed bytes "
+                             f"as genuine; restore the file from a backup and load again")
+    if net.meta.get(UNVERIFIED):
+        raise WorkspaceError(f"{folder}: refusing to save a network loaded from a record "
+                             f"that does not verify ({net.meta[UNVERIFIED]}); a commit would "
+                             f"record the edit as genuine; restore the workspace from a copy "
+                             f"you trust")
     who = who or Attribution()
     files = _tensor_files(net)
     with writer_lock(folder, who.verb or "save", wait):
@@ -322,12 +337,11 @@ def load(folder: str | Path, strict: bool = True, module: Any = None) -> Progres
     folder = Path(folder)
     with reader_lock(folder):
         manifest = read_manifest(folder)
-        if strict:
-            findings = verify_chain(manifest)
-            if findings:
-                raise WorkspaceError(f"{folder}: the record does not verify: "
-                                     f"{findings[0].message}; run 'colonnade check {folder}' "
-                                     f"and restore the workspace from a copy you trust")
+        findings = verify_chain(manifest)
+        if strict and findings:
+            raise WorkspaceError(f"{folder}: the record does not verify: "
+                                 f"{findings[0].message}; run 'colonnade check {folder}' "
+                                 f"and restore the workspace from a copy you trust")
         try:
             spec = parse_spec(manifest.get("spec"))
         except ColonnadeError as exc:
@@ -380,6 +394,8 @@ def load(folder: str | Path, strict: bool = True, module: Any = None) -> Progres
     net.meta.setdefault("records", {})
     if mismatched:
         net.meta["_mismatched"] = mismatched
+    if findings:  # strict=False only; ``save`` refuses such a network
+        net.meta[UNVERIFIED] = findings[0].message
     net.meta[LOADED_HEAD] = _head(manifest)
     net.freeze()
     return net
