@@ -112,9 +112,13 @@ def _cli(*args, strace: list[str] | None = None, cwd=None) -> subprocess.Complet
 
 
 def _main_thread_calls(trace_file: Path, names: tuple[str, ...]) -> list[tuple[str, int, str]]:
-    """(syscall, its invocation number in the main thread, the line) from an strace log."""
+    """(syscall, its invocation number in the main thread, the line) from an strace log.
+
+    The main thread is the one whose ``execve`` strace logged first (the command itself),
+    not whichever thread happened to make the first traced call.
+    """
     lines = trace_file.read_text().splitlines()
-    main_pid = lines[0].split()[0]
+    main_pid = next(line for line in lines if "execve(" in line).split()[0]
     seen: dict[str, int] = {}
     calls = []
     for line in lines:
@@ -146,7 +150,7 @@ def test_the_real_seal_command_killed_by_strace_at_its_commit(crash_base, tmp_pa
     shutil.copytree(ready, dry)
     log = tmp_path / "seal.strace"
     done = _cli("seal", str(dry), "--task", "new", "--probe", files["new"][1],
-                strace=[STRACE, "-f", "-qq", "-o", str(log), "-e", f"trace={','.join(names)}"])
+                strace=[STRACE, "-f", "-qq", "-o", str(log), "-e", f"trace=execve,{','.join(names)}"])
     assert done.returncode == 0, done.stderr
     calls = _main_thread_calls(log, names)
     manifest_rename = next(c for c in calls if c[0].startswith("rename")
