@@ -14,6 +14,7 @@ ENOSPC from write(2); SIGTERM's default action ends the process without unwindin
 from __future__ import annotations
 
 import errno
+import fcntl
 import hashlib
 import json
 import os
@@ -28,7 +29,7 @@ from conftest import snapshot
 from colonnade.app.record import verify_record
 from colonnade.app.transaction import recover
 from colonnade.errors import BusyError, WorkspaceError
-from colonnade.files import commit, store
+from colonnade.files import commit, lock, store
 from colonnade.files.lock import writer_lock
 from colonnade.model.network import ProgressiveNet
 
@@ -414,3 +415,19 @@ def test_a_network_loaded_over_a_hand_edited_manifest_is_never_saved(tmp_path):
         store.save(net, ws)
     assert _listing(ws) == before
     assert any("records/t0" in f.message for f in verify_record(ws).findings)
+
+
+def test_a_reader_lock_held_for_ever_stops_readers_in_one_sentence(tmp_path, monkeypatch):
+    """Anyone who may read ``.reader.lock`` can flock it exclusively (flock(2) needs only a
+    descriptor); before, every ``check``, ``show`` and ``load`` then waited for ever."""
+    ws = _ws(tmp_path / "ws")
+    monkeypatch.setattr(lock, "READER_WAIT", 0.3, raising=False)
+    holder = os.open(ws / ".reader.lock", os.O_RDONLY)
+    try:
+        fcntl.flock(holder, fcntl.LOCK_EX)
+        kind, exc = _in_thread(lambda: store.load(ws), 10)
+        assert kind == "raised" and isinstance(exc, BusyError), (kind, exc)
+        assert "reader lock" in str(exc) and exc.exit_code == 3
+    finally:
+        os.close(holder)
+    assert store.load(ws).tasks == ["t0"]

@@ -48,6 +48,9 @@ __all__ = ["WRITER_LOCK", "READER_LOCK", "writer_lock", "reader_lock", "try_coll
 WRITER_LOCK = ".writer.lock"
 READER_LOCK = ".reader.lock"
 DEFAULT_WAIT = 5.0  # seconds a second writer waits before it gives up (--wait changes it)
+# Seconds a reader waits for the reader lock. A writer holds it only while it unlinks the
+# files of an older generation (milliseconds), so a wait this long means it is stuck.
+READER_WAIT = 10.0
 _POLL = 0.1
 # Lock files are opened without following a symbolic link: a workspace from someone else
 # could otherwise point one at a file of the user's, which the holder's note overwrites.
@@ -180,6 +183,11 @@ def reader_lock(folder: str | Path) -> Iterator[None]:
 
     A workspace on read-only media, or one made before locks existed, has no lock file a
     reader may create; it is read without one (nobody can be writing it either way).
+
+    A writer holds it exclusively only for the moments it deletes old files; anyone who
+    may read the file can hold it too (flock needs no more than a descriptor opened for
+    reading), or a writer stopped with Ctrl-Z may sit in that moment, so a reader waits
+    ``READER_WAIT`` seconds at most and then stops with BusyError (exit 3), never for ever.
     """
     path = Path(folder) / READER_LOCK
     try:
@@ -188,7 +196,20 @@ def reader_lock(folder: str | Path) -> Iterator[None]:
         yield
         return
     try:
-        fcntl.flock(fd, fcntl.LOCK_SH)
+        deadline = time.monotonic() + READER_WAIT
+        while True:
+            try:
+                fcntl.flock(fd, fcntl.LOCK_SH | fcntl.LOCK_NB)
+                break
+            except OSError as exc:
+                if exc.errno not in (errno.EAGAIN, errno.EACCES, errno.EWOULDBLOCK):
+                    raise
+            if time.monotonic() >= deadline:
+                raise BusyError(f"{folder}: busy, another process has held its reader lock "
+                                f"({READER_LOCK}) for {READER_WAIT:g} s, so it cannot be read "
+                                f"whole now (a write stopped while it removes old files?); "
+                                f"try again when it is done")
+            time.sleep(_POLL)
         yield
     finally:
         os.close(fd)
