@@ -111,20 +111,23 @@ def _cli(*args, strace: list[str] | None = None, cwd=None) -> subprocess.Complet
                           env=env, timeout=300, cwd=cwd)
 
 
-def _main_thread_calls(trace_file: Path, names: tuple[str, ...]) -> list[tuple[str, int, str]]:
-    """(syscall, its invocation number in the main thread, the line) from an strace log.
-
-    The main thread is the one whose ``execve`` strace logged first (the command itself),
-    not whichever thread happened to make the first traced call.
-    """
+def _committing_thread_calls(trace_file: Path, names: tuple[str, ...],
+                             ) -> list[tuple[str, int, str]]:
+    """(syscall, its invocation number in the thread that renamed the manifest, the line)
+    from an strace log: strace numbers invocations per tracee (thread), so that is the
+    numbering ``inject=...:when=N`` uses."""
     lines = trace_file.read_text().splitlines()
-    main_pid = next(line for line in lines if "execve(" in line).split()[0]
+    committer = next((line.split(None, 1)[0] for line in lines
+                      if " rename" in line and 'manifest.yaml"' in line), None)
+    assert committer is not None, "no rename of manifest.yaml in the trace:\n" + "\n".join(
+        lines[-30:])
     seen: dict[str, int] = {}
     calls = []
     for line in lines:
         pid, _, rest = line.partition(" ")
+        rest = rest.strip()
         name = rest.split("(", 1)[0].strip()
-        if pid != main_pid or name not in names or "resumed>" in rest:
+        if pid != committer or name not in names or rest.startswith("<..."):
             continue
         seen[name] = seen.get(name, 0) + 1
         calls.append((name, seen[name], rest))
@@ -152,9 +155,9 @@ def test_the_real_seal_command_killed_by_strace_at_its_commit(crash_base, tmp_pa
     done = _cli("seal", str(dry), "--task", "new", "--probe", files["new"][1],
                 strace=[STRACE, "-f", "-qq", "-o", str(log), "-e", f"trace=execve,{','.join(names)}"])
     assert done.returncode == 0, done.stderr
-    calls = _main_thread_calls(log, names)
+    calls = _committing_thread_calls(log, names)
     manifest_rename = next(c for c in calls if c[0].startswith("rename")
-                           and '/manifest.yaml"' in c[2])
+                           and 'manifest.yaml"' in c[2])
     after = calls[calls.index(manifest_rename) + 1]  # the folder's fsync: committed
     cleanup = next(c for c in calls if c[0].startswith("unlink"))
     victims = [(manifest_rename, False), (after, True), (cleanup, True)]
