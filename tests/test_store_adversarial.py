@@ -431,3 +431,16 @@ def test_a_reader_lock_held_for_ever_stops_readers_in_one_sentence(tmp_path, mon
     finally:
         os.close(holder)
     assert store.load(ws).tasks == ["t0"]
+
+
+def test_listed_files_larger_than_the_machine_can_load_are_refused_unread(tmp_path,
+                                                                         monkeypatch):
+    """A sparse weights file claiming far more than memory, with a manifest that records
+    that very size: refused from the recorded sizes before a byte of it is read."""
+    ws = _ws(tmp_path)
+    weights = store.listed_files(ws)["weights.safetensors"]
+    monkeypatch.setattr(store, "tensor_budget", lambda: weights.stat().st_size)
+    store.load(ws)  # within the budget: loads
+    monkeypatch.setattr(store, "tensor_budget", lambda: weights.stat().st_size // 2)
+    with pytest.raises(WorkspaceError, match="more than this machine can load"):
+        store.load(ws, strict=False)

@@ -29,6 +29,7 @@ from ..clock import now
 from ..errors import ColonnadeError, WorkspaceError
 from ..evidence.record import Attribution, chained_prefix, extend, verify_chain
 from ..model.adopted import ADOPTED_FILE, rebuild_adopted
+from ..model.budget import readable_bytes, tensor_budget
 from ..model.guard import verify_unchanged
 from ..model.network import ProgressiveNet
 from ..model.schema import Spec
@@ -273,6 +274,24 @@ def _require_empty(folder: Path) -> None:
                              f"path or remove it first")
 
 
+def _check_listed_sizes(folder: Path, files: dict[str, Any]) -> None:
+    """Refuse, before reading any file, a workspace whose listed files would not fit in
+    memory: loading holds every listed file's bytes and the tensors built from them, so
+    their recorded sizes together may take at most the tensor budget (half of this
+    machine's memory; ``model.budget``). A hand-made manifest naming a sparse file of
+    terabytes with a matching size is stopped here, not by the operating system."""
+    total = 0
+    for entry in files.values():
+        size = entry.get("bytes") if isinstance(entry, dict) else None
+        if isinstance(size, int) and not isinstance(size, bool) and size > 0:
+            total += size
+    if total > tensor_budget():
+        raise WorkspaceError(f"{folder / MANIFEST}: its files take {readable_bytes(total)}, "
+                             f"more than this machine can load (at most "
+                             f"{readable_bytes(tensor_budget())}, half of its memory); open it "
+                             f"on a machine with more memory")
+
+
 def _locate(folder: Path, name: str, entry: Any, strict: bool) -> Path:
     """The file a manifest entry names: its content address, else the older top-level
     place; for ``check`` (not strict) also the one stored file of that name, if the
@@ -350,6 +369,7 @@ def load(folder: str | Path, strict: bool = True, module: Any = None) -> Progres
         if not isinstance(files, dict) or WEIGHTS not in files:
             raise WorkspaceError(f"{folder / MANIFEST}: lists no {WEIGHTS}; restore it from "
                                  f"a backup")
+        _check_listed_sizes(folder, files)
         mismatched = []
         raw: dict[str, bytes] = {}
         for name, entry in files.items():
