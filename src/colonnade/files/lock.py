@@ -109,6 +109,26 @@ def _holder(fd: int) -> str:
     return text or "another process"
 
 
+def _flock_within(fd: int, mode: int, seconds: float,
+                  waiting: Callable[[], None] | None = None) -> bool:
+    """Take ``flock(fd, mode)``, trying every ``_POLL`` seconds for up to ``seconds``
+    (never blocking in the kernel, so Ctrl-C and the deadline always get through);
+    whether it was taken. ``waiting`` is called after each try that found it held."""
+    deadline = time.monotonic() + seconds
+    while True:
+        try:
+            fcntl.flock(fd, mode | fcntl.LOCK_NB)
+            return True
+        except OSError as exc:
+            if exc.errno not in (errno.EAGAIN, errno.EACCES, errno.EWOULDBLOCK):
+                raise
+        if time.monotonic() >= deadline:
+            return False
+        if waiting is not None:
+            waiting()
+        time.sleep(_POLL)
+
+
 @contextmanager
 def writer_lock(folder: str | Path, verb: str, wait: float | None = None,
                 on_wait: Callable[[str], None] | None = None) -> Iterator[None]:
@@ -140,24 +160,17 @@ def writer_lock(folder: str | Path, verb: str, wait: float | None = None,
         raise WorkspaceError(f"{folder}: cannot open its writer lock ({exc.strerror}); a "
                              f"workspace can only be changed where you may write") from None
     try:
-        deadline = time.monotonic() + wait
-        told = False
-        while True:
-            try:
-                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-                break
-            except OSError as exc:
-                if exc.errno not in (errno.EAGAIN, errno.EACCES, errno.EWOULDBLOCK):
-                    raise
-            holder = _holder(fd)
-            if time.monotonic() >= deadline:
-                raise BusyError(f"{folder}: busy, {holder} holds its writer lock; try again "
-                                f"when it is done, or wait longer with --wait SECONDS")
+        told: list[bool] = []
+
+        def waiting() -> None:
             if not told and on_wait is not None:
-                on_wait(f"{folder}: {holder} holds the writer lock; waiting up to "
+                on_wait(f"{folder}: {_holder(fd)} holds the writer lock; waiting up to "
                         f"{wait:g} s")
-                told = True
-            time.sleep(_POLL)
+                told.append(True)
+
+        if not _flock_within(fd, fcntl.LOCK_EX, wait, waiting):
+            raise BusyError(f"{folder}: busy, {_holder(fd)} holds its writer lock; try again "
+                            f"when it is done, or wait longer with --wait SECONDS")
         stamp = f"pid {os.getpid()} on host {socket.gethostname()} ({verb} since {now()})"
         os.ftruncate(fd, 0)
         os.pwrite(fd, stamp.encode("utf-8"), 0)
@@ -196,20 +209,11 @@ def reader_lock(folder: str | Path) -> Iterator[None]:
         yield
         return
     try:
-        deadline = time.monotonic() + READER_WAIT
-        while True:
-            try:
-                fcntl.flock(fd, fcntl.LOCK_SH | fcntl.LOCK_NB)
-                break
-            except OSError as exc:
-                if exc.errno not in (errno.EAGAIN, errno.EACCES, errno.EWOULDBLOCK):
-                    raise
-            if time.monotonic() >= deadline:
-                raise BusyError(f"{folder}: busy, another process has held its reader lock "
-                                f"({READER_LOCK}) for {READER_WAIT:g} s, so it cannot be read "
-                                f"whole now (a write stopped while it removes old files?); "
-                                f"try again when it is done")
-            time.sleep(_POLL)
+        if not _flock_within(fd, fcntl.LOCK_SH, READER_WAIT):
+            raise BusyError(f"{folder}: busy, another process has held its reader lock "
+                            f"({READER_LOCK}) for {READER_WAIT:g} s, so it cannot be read "
+                            f"whole now (a write stopped while it removes old files?); "
+                            f"try again when it is done")
         yield
     finally:
         os.close(fd)
