@@ -72,14 +72,14 @@ def _in_thread(fn, seconds=10.0):
 @pytest.fixture
 def slow_manifest(monkeypatch):
     """Widen the window between a writer's read and its commit point, so races happen."""
-    real = commit._write_durably
+    real = commit.write_durably
 
     def slow(folder, final, data):
         if final == "manifest.yaml":
             time.sleep(0.3)
         return real(folder, final, data)
 
-    monkeypatch.setattr(commit, "_write_durably", slow)
+    monkeypatch.setattr(commit, "write_durably", slow)
 
 
 def test_two_threads_saving_to_one_workspace_never_break_it(tmp_path, slow_manifest):

@@ -47,8 +47,8 @@ from .limits import confined, sha256_file
 from .lock import READER_LOCK, WRITER_LOCK, try_collect_lock
 from .manifest import MANIFEST
 
-__all__ = ["DATA", "PENDING", "stored_path", "legacy_path", "write_generation",
-           "read_pending", "pending_recovery"]
+__all__ = ["DATA", "PENDING", "write_durably", "fsync_dir", "sha_hex", "stored_path",
+           "legacy_path", "write_generation", "read_pending", "pending_recovery"]
 
 DATA = "data"
 PENDING = ".pending"
@@ -82,7 +82,8 @@ def legacy_path(name: str) -> str:
     return str(name)
 
 
-def _fsync_dir(folder: Path) -> None:
+def fsync_dir(folder: Path) -> None:
+    """Make a folder's entries (a rename, a new or deleted file) durable."""
     fd = os.open(folder, os.O_RDONLY)
     try:
         os.fsync(fd)
@@ -90,9 +91,11 @@ def _fsync_dir(folder: Path) -> None:
         os.close(fd)
 
 
-def _write_durably(folder: Path, final: str, data: bytes) -> None:
+def write_durably(folder: Path, final: str, data: bytes) -> None:
     """Write ``data`` to a fresh temporary file in ``folder``, fsync it, rename it to
-    ``final``. Every step is one plain system call, so a crash test can stop at each."""
+    ``final``: a crash leaves the old ``final`` or the new one, never half. Every step is
+    one plain system call, so a crash test can stop at each; a failure (not a crash)
+    removes the temporary file."""
     tmp = folder / f"{_TMP_PREFIX}{os.getpid()}-{final}"
     if os.path.lexists(tmp):  # left by a crashed process that had the same pid
         os.unlink(tmp)
@@ -100,13 +103,17 @@ def _write_durably(folder: Path, final: str, data: bytes) -> None:
     fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_NOFOLLOW | os.O_CLOEXEC,
                  0o666 & ~_UMASK)
     try:
-        view = memoryview(data)
-        while view:
-            view = view[os.write(fd, view):]
-        os.fsync(fd)
-    finally:
-        os.close(fd)
-    os.replace(tmp, folder / final)
+        try:
+            view = memoryview(data)
+            while view:
+                view = view[os.write(fd, view):]
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+        os.replace(tmp, folder / final)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
 
 
 def read_pending(folder: Path) -> dict[str, Any] | None:
@@ -207,24 +214,24 @@ def write_generation(folder: Path, files: Mapping[str, bytes], text: str,
             if (folder / PENDING).is_dir() and not (folder / PENDING).is_symlink():
                 raise WorkspaceError(f"{folder / PENDING}: is a folder, where colonnade keeps "
                                      f"the note of an interrupted write; remove it")
-            _write_durably(folder, PENDING, json.dumps(note).encode("utf-8"))
+            write_durably(folder, PENDING, json.dumps(note).encode("utf-8"))
             if not data_dir.is_dir():
                 os.mkdir(data_dir)
-            _fsync_dir(folder)
+            fsync_dir(folder)
             for name, data in files.items():
-                target = data_dir / Path(stored_path(name, _sha_hex(data))).name
+                target = data_dir / Path(stored_path(name, sha_hex(data))).name
                 if target.is_file() and not target.is_symlink() and _holds(target, data):
                     continue
                 if target.is_dir() and not target.is_symlink():
                     raise WorkspaceError(f"{target}: is a folder where colonnade keeps a data "
                                          f"file, so nothing can be committed; remove it")
-                _write_durably(data_dir, target.name, data)
+                write_durably(data_dir, target.name, data)
                 written.append(target)
-            _fsync_dir(data_dir)
-            _write_durably(folder, MANIFEST, text.encode("utf-8"))
+            fsync_dir(data_dir)
+            write_durably(folder, MANIFEST, text.encode("utf-8"))
             committed = True
-            _fsync_dir(folder)  # the commit point is durable from here on
-            _collect(folder, {stored_path(n, _sha_hex(d)) for n, d in files.items()}, retired)
+            fsync_dir(folder)  # the commit point is durable from here on
+            _collect(folder, {stored_path(n, sha_hex(d)) for n, d in files.items()}, retired)
         except BaseException:
             if not committed:
                 _undo(folder, written, earlier)
@@ -249,12 +256,13 @@ def _undo(folder: Path, written: list[Path], earlier: Mapping[str, Any] | None) 
         if earlier is None:
             (folder / PENDING).unlink(missing_ok=True)
         else:  # an earlier interruption is still to be recorded by the next writer
-            _write_durably(folder, PENDING, json.dumps(earlier).encode("utf-8"))
+            write_durably(folder, PENDING, json.dumps(earlier).encode("utf-8"))
     except OSError:
         pass  # what is left is collected by the next commit; the manifest never moved
 
 
-def _sha_hex(data: bytes) -> str:
+def sha_hex(data: bytes) -> str:
+    """The SHA-256 of ``data`` in hex: a file's content address."""
     return hashlib.sha256(data).hexdigest()
 
 
@@ -264,7 +272,7 @@ def _holds(path: Path, data: bytes) -> bool:
         digest, size = sha256_file(path, len(data) + 1)
     except (OSError, WorkspaceError):
         return False
-    return size == len(data) and digest == _sha_hex(data)
+    return size == len(data) and digest == sha_hex(data)
 
 
 _OWN = {MANIFEST, PENDING, WRITER_LOCK, READER_LOCK, DATA}
@@ -282,7 +290,7 @@ def _collect(folder: Path, keep: set[str], retired: set[str]) -> None:
     with try_collect_lock(folder) as free:
         if not free:  # the commit is whole: say so, and let a later commit collect
             os.unlink(folder / PENDING)
-            _fsync_dir(folder)
+            fsync_dir(folder)
             return
         data_dir = folder / DATA
         for entry in os.scandir(data_dir):
@@ -296,9 +304,9 @@ def _collect(folder: Path, keep: set[str], retired: set[str]) -> None:
                     or (name.startswith(".") and name.endswith(".tmp")))
             if ours and name not in _OWN and entry.is_file(follow_symlinks=False):
                 os.unlink(entry.path)
-        _fsync_dir(data_dir)
+        fsync_dir(data_dir)
         os.unlink(folder / PENDING)
-        _fsync_dir(folder)
+        fsync_dir(folder)
 
 
 def confined_stored(folder: Path, name: str, entry: Any) -> tuple[Path, Path]:

@@ -11,11 +11,9 @@ safe loader and tensors with safetensors: no code runs.
 from __future__ import annotations
 
 import copy
-import hashlib
 import os
 import shutil
 import socket
-import tempfile
 from pathlib import Path
 from typing import Any
 
@@ -34,7 +32,14 @@ from ..model.guard import verify_unchanged
 from ..model.network import ProgressiveNet
 from ..model.schema import Spec
 from ..model.spec import load_spec, parse_spec
-from .commit import confined_stored, pending_recovery, write_generation
+from .commit import (
+    confined_stored,
+    fsync_dir,
+    pending_recovery,
+    sha_hex,
+    write_durably,
+    write_generation,
+)
 from .lock import READER_LOCK, WRITER_LOCK, reader_lock, writer_lock
 from .manifest import FORMAT, MANIFEST, RESERVED, VERSION, WEIGHTS, manifest_text, read_manifest
 from .summary import network_summary
@@ -47,57 +52,16 @@ LOADED_HEAD = "_loaded_head"
 # The first finding of a record that did not verify, when loaded with strict=False.
 UNVERIFIED = "_unverified_record"
 
-_UMASK = os.umask(0)
-os.umask(_UMASK)
-
-
-def _fsync_dir(folder: Path) -> None:
-    try:
-        fd = os.open(folder, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(fd)
-    except OSError:
-        pass
-    finally:
-        os.close(fd)
-
-
-def _write_temp(folder: Path, name: str, data: bytes) -> Path:
-    fd, tmp = tempfile.mkstemp(prefix=f".{name}.", suffix=".tmp", dir=folder)
-    try:
-        os.chmod(tmp, 0o666 & ~_UMASK)  # mkstemp makes 0600; give the usual file mode
-        with os.fdopen(fd, "wb") as f:
-            f.write(data)
-            f.flush()
-            os.fsync(f.fileno())
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    return Path(tmp)
-
-
 def atomic_write(path: str | Path, data: bytes | str) -> None:
     """Write a file so that a crash leaves either the old content or the new, never half.
 
     For files outside workspaces (exports, reports, diagrams); workspaces are committed by
-    ``save``.
+    ``save``. The same durable write as a commit's (``files.commit.write_durably``).
     """
     path = Path(path)
-    if isinstance(data, str):
-        data = data.encode("utf-8")
-    tmp = _write_temp(path.parent, path.name, data)
-    try:
-        os.replace(tmp, path)
-    except BaseException:
-        tmp.unlink(missing_ok=True)
-        raise
-    _fsync_dir(path.parent)
-
-
-def _sha256(data: bytes) -> str:
-    return hashlib.sha256(data).hexdigest()
+    write_durably(path.parent, path.name, data.encode("utf-8") if isinstance(data, str)
+                  else data)
+    fsync_dir(path.parent)
 
 
 def _head(manifest: dict[str, Any] | None) -> str | None:
@@ -223,7 +187,7 @@ def _manifest_of(net: ProgressiveNet, files: dict[str, bytes]) -> dict[str, Any]
     for key, value in net.meta.items():
         if not key.startswith("_"):  # in-memory notes, such as digests that did not match
             manifest[key] = value
-    manifest["files"] = {name: {"sha256": _sha256(data), "bytes": len(data)}
+    manifest["files"] = {name: {"sha256": sha_hex(data), "bytes": len(data)}
                          for name, data in files.items()}
     return manifest
 
@@ -336,7 +300,7 @@ def _read_file(folder: Path, name: str, entry: Any, strict: bool) -> tuple[bytes
                              f"from a backup")
     with open(path, "rb") as handle:
         data = handle.read(actual + 1)
-    ok = _sha256(data) == want
+    ok = sha_hex(data) == want
     if strict and not ok:
         raise WorkspaceError(changed)
     return data, ok
