@@ -323,6 +323,32 @@ def test_the_console_script_starts_through_the_startup_handler():
     assert "from ._startup import main" in main_module
 
 
+def test_an_interrupt_caught_after_a_nested_evaluation_still_exits_130(tmp_path):
+    """CPython marks a KeyboardInterrupt that leaves code run through ``PyRun_String``
+    (as C extensions do while torch loads) as unhandled even when the command line
+    catches it later, and under ``python -m`` then ends the process by SIGINT (a return
+    code of -2, seen once in CI). The interrupt is injected here through that very C
+    call, found with ctypes, at the moment the command line builds its parser."""
+    (tmp_path / "nested_interrupt.py").write_text(
+        "import ctypes, sys\n"
+        "import colonnade._startup\n"
+        "import importlib\n"
+        "cli = importlib.import_module('colonnade.cli.main')  # the module, not the function\n"
+        "run = ctypes.pythonapi.PyRun_String\n"
+        "run.restype = ctypes.py_object\n"
+        "run.argtypes = [ctypes.c_char_p, ctypes.c_int, ctypes.py_object, ctypes.py_object]\n"
+        "def interrupted_parser():\n"
+        "    run(b'raise KeyboardInterrupt', 257, {}, {})  # 257: Py_file_input\n"
+        "cli.build_parser = interrupted_parser\n"
+        "colonnade._startup.main()\n")
+    env = {**os.environ, "PYTHONPATH": os.pathsep.join(
+        [str(tmp_path), str(Path(colonnade.__file__).parents[1]), os.environ.get("PYTHONPATH", "")])}
+    proc = subprocess.run([sys.executable, "-m", "nested_interrupt"], capture_output=True,
+                          text=True, timeout=TIMEOUT_S, env=env)
+    assert proc.returncode == 130, (proc.returncode, proc.stderr)
+    assert proc.stderr == "colonnade: interrupted; the workspace is unchanged\n"
+
+
 @pytest.mark.parametrize("delay", [0.5])
 def test_ctrl_c_at_any_later_moment_prints_one_sentence(workspace, tmp_path, delay):
     """Past the interpreter's own start-up (tens of milliseconds), a SIGINT at any moment

@@ -24,13 +24,14 @@ from types import FrameType
 __all__ = ["main", "STARTUP_INTERRUPTED"]
 
 STARTUP_INTERRUPTED = "colonnade: interrupted while starting; nothing was changed\n"
+INTERRUPTED_EXIT = 130  # 128 + SIGINT, the shells' convention for a job ended by Ctrl-C
 
 
 def _interrupted(signum: int, frame: FrameType | None) -> None:
     # Nothing has been read or written yet, so leave at once: os.write and os._exit do not
     # run Python's unwinding, which inside an import could print the import's traceback.
     os.write(2, STARTUP_INTERRUPTED.encode())
-    os._exit(130)
+    os._exit(INTERRUPTED_EXIT)
 
 
 # Only where Python's own handler is in force: a process started with SIGINT ignored
@@ -47,4 +48,23 @@ def main() -> None:
     # The verb has finished and said so; a Ctrl-C while the interpreter shuts down
     # (torch's teardown takes a moment) has nothing left to stop.
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    if code == INTERRUPTED_EXIT:
+        _leave_after_interrupt()
     sys.exit(code)
+
+
+def _leave_after_interrupt() -> None:
+    """Exit 130 at once, after the sentence, past the interpreter's own finalisation.
+
+    CPython remembers a KeyboardInterrupt that left a nested evaluation (code that a C
+    extension runs through ``PyRun_String``, as some do while torch loads) even when the
+    command line caught it later; under ``python -m colonnade`` the interpreter then ends
+    by killing itself with SIGINT at exit, so the caller sees a signal death instead of
+    130. Every verb has released its locks and temporary files by the time it returns
+    (they are context managers), so nothing is left for finalisation to do here."""
+    for stream in (sys.stdout, sys.stderr):
+        try:
+            stream.flush()
+        except (OSError, ValueError):  # a closed pipe or stream: the sentence is all
+            pass
+    os._exit(INTERRUPTED_EXIT)
