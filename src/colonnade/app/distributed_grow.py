@@ -9,9 +9,10 @@ cleanly, so a failed or killed worker leaves the workspace exactly as before. La
 
 What a killed parent leaves: the staging folder is a dot-folder inside the workspace
 (``.colonnade-ddp-<pid>-<random>``, never read as part of it), so nothing is written
-beside the workspace; the next ``grow --nproc`` removes every such folder whose parent
-process is gone. The workers ask the kernel to kill them when their parent dies
-(Linux's ``prctl(PR_SET_PDEATHSIG)``), so none is left running on its own.
+beside the workspace; the next writer of the workspace, or ``colonnade recover``,
+removes it (``files.staging``: it was made under the writer lock, so whoever holds the
+lock next knows that its maker is gone). The workers ask the kernel to kill them when
+their parent dies (Linux's ``prctl(PR_SET_PDEATHSIG)``), so none is left running alone.
 """
 
 from __future__ import annotations
@@ -24,7 +25,6 @@ import os
 import shutil
 import signal
 import sys
-import tempfile
 import threading
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -37,6 +37,7 @@ import torch.multiprocessing as mp
 from ..errors import UsageError
 from ..evidence.record import Attribution, unchain
 from ..files.lock import writer_lock
+from ..files.staging import make_staging
 from ..files.store import LOADED_HEAD, load, save
 from ..model.device import resolve_device
 from ..model.schema import Spec
@@ -54,11 +55,7 @@ from ..training.growth import grow
 from .transaction import tell_waiting, wait_seconds
 
 __all__ = ["DataOptions", "growth_data", "GrowRequest", "grow_distributed", "run_rank",
-           "run_torchrun_rank", "STAGING_PREFIX", "remove_stale_staging"]
-
-# The staging folder's name inside the workspace: STAGING_PREFIX, the parent's pid, "-",
-# random letters. The workspace store knows the name and never reads the folder.
-STAGING_PREFIX = ".colonnade-ddp-"
+           "run_torchrun_rank"]
 
 
 @dataclass
@@ -182,33 +179,6 @@ def _die_with_parent(parent: int) -> None:
         os._exit(1)
 
 
-def _alive(pid: int) -> bool:
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True  # another user's process
-    return True
-
-
-def remove_stale_staging(folder: str | Path) -> list[str]:
-    """Remove the staging folders of ``grow --nproc`` runs whose parent process is gone.
-
-    The pid in a folder's name is the parent's; a folder of a live process is kept (it may
-    be a run in progress). Returns the names removed.
-    """
-    removed = []
-    for path in Path(folder).glob(STAGING_PREFIX + "*"):
-        pid = path.name[len(STAGING_PREFIX):].split("-", 1)[0]
-        if not path.is_dir() or path.is_symlink() or not pid.isdigit():
-            continue
-        if int(pid) != os.getpid() and not _alive(int(pid)):
-            shutil.rmtree(path, ignore_errors=True)
-            removed.append(path.name)
-    return removed
-
-
 def _spawned(rank: int, world: int, port: int, request: GrowRequest, staging: str,
              progress: bool, parent: int) -> None:
     _die_with_parent(parent)
@@ -264,14 +234,14 @@ def grow_distributed(request: GrowRequest, nproc: int, progress: bool = True,
 def _grow_locked(request: GrowRequest, nproc: int, progress: bool,
                  who: Attribution | None) -> dict[str, Any]:
     before = load(request.folder)  # validates the workspace and names before any spawn
-    remove_stale_staging(request.folder)  # left by a run whose parent was killed
     if request.task in before.task_info:
         raise UsageError(f"a task named {request.task!r} exists already in {request.folder}; "
                          f"choose another name")
     # torch logs a warning line when it terminates the surviving ranks; our one sentence
     # below says what happened instead.
     logging.getLogger("torch.multiprocessing.spawn").setLevel(logging.ERROR)
-    tmp = tempfile.mkdtemp(prefix=f"{STAGING_PREFIX}{os.getpid()}-", dir=request.folder)
+    # Made and removed under the writer lock, so a later writer knows it is stale.
+    tmp = make_staging(request.folder)
     try:
         staging = str(Path(tmp) / "result")
         try:

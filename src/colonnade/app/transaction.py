@@ -21,6 +21,7 @@ import warnings
 from collections.abc import Iterator
 from contextlib import ExitStack, contextmanager
 from contextvars import ContextVar
+from dataclasses import dataclass
 from pathlib import Path
 
 from ..errors import UsageError
@@ -28,11 +29,13 @@ from ..evidence.record import Attribution, describe_entry, signature_required_fr
 from ..evidence.signing import Signer, load_signer
 from ..files.commit import read_pending
 from ..files.lock import DEFAULT_WAIT, writer_lock
+from ..files.staging import Swept
 from ..files.store import load, save
 from ..model.network import ProgressiveNet
 
 __all__ = ["Transaction", "read_workspace", "writing", "attribution", "signer_from",
-           "lock_wait", "wait_seconds", "tell_waiting", "recover", "SIGN_KEY_ENV",
+           "lock_wait", "wait_seconds", "tell_waiting", "recover", "recovery", "Recovery",
+           "SIGN_KEY_ENV",
            "PASSPHRASE_ENV", "WAIT_ENV"]
 
 SIGN_KEY_ENV = "COLONNADE_SIGN_KEY"
@@ -116,13 +119,14 @@ class Transaction:
         self._locked = ExitStack()
         self.net: ProgressiveNet | None = None
         self._discarded = False
+        self.swept = Swept()  # staging folders of killed runs, removed on taking the lock
 
     def open(self) -> Transaction:
         """Take the writer lock, then read the workspace: nothing rests on a stale read."""
         if not self.folder.is_dir():
             load(self.folder)  # says in one sentence what is wrong with the path
-        self._locked.enter_context(writer_lock(self.folder, self.verb, wait_seconds(),
-                                               tell_waiting))
+        self.swept = self._locked.enter_context(writer_lock(self.folder, self.verb,
+                                                            wait_seconds(), tell_waiting))
         try:
             self.net = load(self.folder)
             self._require_signature()
@@ -172,16 +176,38 @@ def writing(folder: str | Path, verb: str, by: str | None = None, reason: str | 
         tx.close()
 
 
-def recover(folder: str | Path, by: str | None = None, reason: str | None = None,
-            sign: str | Path | None = None) -> str | None:
+@dataclass
+class Recovery:
+    """What ``recover`` did: the interrupted writes it recorded (None: there was none),
+    and the staging folders of killed ``grow --nproc`` runs it swept (not recorded: they
+    were never part of the workspace)."""
+
+    found: str | None
+    swept: Swept
+
+    def describe(self) -> str | None:
+        """Everything it did in one clause, or None when there was nothing to do."""
+        parts = [p for p in (self.found, self.swept.describe()) if p]
+        return "; ".join(parts) or None
+
+
+def recovery(folder: str | Path, by: str | None = None, reason: str | None = None,
+             sign: str | Path | None = None) -> Recovery:
     """``colonnade recover WS``: finish or undo an interrupted write now, not at the next
-    one. Returns what was found (also recorded in the history), or None if nothing was."""
+    one (recorded in the history), and remove staging folders left by killed runs."""
     with writing(folder, "recover", by, reason, sign) as tx:
         if not tx.interrupted_write:
             tx.discard()
-            return None
+            return Recovery(None, tx.swept)
     found = tx.net.meta["history"][-1].get("found") if tx.net is not None else None
-    return "; ".join(found) if isinstance(found, list) else "an interrupted write"
+    return Recovery("; ".join(found) if isinstance(found, list) else "an interrupted write",
+                    tx.swept)
+
+
+def recover(folder: str | Path, by: str | None = None, reason: str | None = None,
+            sign: str | Path | None = None) -> str | None:
+    """``recovery`` in one clause: what was found and removed, or None if nothing was."""
+    return recovery(folder, by, reason, sign).describe()
 
 
 def read_workspace(folder: str | Path, strict: bool = True) -> ProgressiveNet:

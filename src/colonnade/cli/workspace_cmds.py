@@ -153,13 +153,18 @@ def _print_transfer(rec: dict[str, Any]) -> None:
 
 
 def _recover(args: argparse.Namespace) -> int:
-    from ..app.transaction import recover
+    from ..app.transaction import recovery
 
-    found = recover(args.workspace, **record_kwargs(args))
-    if found is None:
+    done = recovery(args.workspace, **record_kwargs(args))
+    swept = done.swept.describe()
+    if done.found is not None:
+        print(f"{args.workspace}: recovered ({done.found}); recorded in the history")
+    elif swept is None:
         print(f"{args.workspace}: no interrupted write to recover; nothing changed")
     else:
-        print(f"{args.workspace}: recovered ({found}); recorded in the history")
+        print(f"{args.workspace}: no interrupted write to recover; nothing recorded")
+    if swept is not None:
+        print(f"{args.workspace}: {swept}")
     return 0
 
 

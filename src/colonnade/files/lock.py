@@ -41,6 +41,7 @@ from pathlib import Path
 
 from ..clock import now
 from ..errors import BusyError, WorkspaceError
+from .staging import Swept, sweep_staging
 
 __all__ = ["WRITER_LOCK", "READER_LOCK", "writer_lock", "reader_lock", "try_collect_lock",
            "holds_writer_lock", "DEFAULT_WAIT"]
@@ -131,14 +132,19 @@ def _flock_within(fd: int, mode: int, seconds: float,
 
 @contextmanager
 def writer_lock(folder: str | Path, verb: str, wait: float | None = None,
-                on_wait: Callable[[str], None] | None = None) -> Iterator[None]:
-    """Hold ``folder``'s writer lock for the block; BusyError (exit 3) after ``wait`` s."""
+                on_wait: Callable[[str], None] | None = None) -> Iterator[Swept]:
+    """Hold ``folder``'s writer lock for the block; BusyError (exit 3) after ``wait`` s.
+
+    Taking it (not re-entering it) sweeps the staging folders a killed ``grow --nproc``
+    left (``files.staging``): with the lock held, none can belong to a live run. The
+    block gets what was swept (an empty ``Swept`` when re-entered).
+    """
     folder = Path(folder)
     key = _key(folder)
     if key in _held:
         _held[key][0] += 1
         try:
-            yield
+            yield Swept()
         finally:
             if key in _held:
                 _held[key][0] -= 1
@@ -176,7 +182,7 @@ def writer_lock(folder: str | Path, verb: str, wait: float | None = None,
         os.pwrite(fd, stamp.encode("utf-8"), 0)
         _held[key] = [1, fd]
         try:
-            yield
+            yield sweep_staging(folder)
         finally:
             if _held.pop(key, None) is None:
                 fd = -1  # a forked child: its copy was closed at the fork, the lock is not its
