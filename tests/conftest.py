@@ -6,11 +6,39 @@ scikit-learn (``sklearn.datasets.load_digits``), so no download is needed.
 
 from __future__ import annotations
 
+import os
+
 import numpy as np
 import pytest
 import torch
 
 torch.set_num_threads(1)  # a shared 2-core machine; one thread also fixes the kernels used
+
+# Knobs of the test suite itself, kept from the caller's environment.
+SUITE_KNOBS = {"COLONNADE_FULL_BATTERY"}
+# What a launcher of torch.distributed sets for its workers (torchrun): in the caller's
+# environment they would make a test's colonnade think it is one rank of a launch.
+LAUNCHER_VARIABLES = ("TORCHELASTIC_RUN_ID", "RANK", "LOCAL_RANK", "GROUP_RANK", "WORLD_SIZE",
+                      "LOCAL_WORLD_SIZE", "MASTER_ADDR", "MASTER_PORT")
+
+
+def _clear_callers_settings() -> list[str]:
+    """Remove colonnade's own settings (COLONNADE_WAIT, COLONNADE_SIGN_KEY, ...) and a
+    launcher's variables from this process's environment, before any test runs.
+
+    A user's shell may export them; every test and every command it starts in a child
+    process would then sign with the user's key, wait another time for a lock, and so on.
+    Tests that want one set it themselves (monkeypatch.setenv). Returns the names removed.
+    """
+    names = [name for name in os.environ
+             if (name.startswith("COLONNADE_") and name not in SUITE_KNOBS)
+             or name in LAUNCHER_VARIABLES]
+    for name in names:
+        del os.environ[name]
+    return names
+
+
+_clear_callers_settings()
 
 DIGITS_SPEC = {
     "name": "digits-mlp",
