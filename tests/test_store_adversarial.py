@@ -53,7 +53,12 @@ def _grown(ws, task="t9", seed=9):
     return net
 
 
-def _in_thread(fn, seconds=10.0):
+# Only a hang is detected with it (a FIFO opened for reading waits for ever), so the
+# bound is generous: a slow, loaded machine must never read as a hang.
+HANG_S = 120.0
+
+
+def _in_thread(fn, seconds=HANG_S):
     """Run ``fn`` in a thread; ('hung', None) if it has not returned after ``seconds``."""
     box: dict = {}
 
@@ -90,7 +95,7 @@ def test_two_threads_saving_to_one_workspace_never_break_it(tmp_path, slow_manif
     a, b = _grown(ws, "ta", 1), _grown(ws, "tb", 2)
     results = {}
     threads = [threading.Thread(target=lambda n=n, k=k: results.__setitem__(
-        k, _in_thread(lambda: store.save(n, ws), 20)[0])) for n, k in ((a, "a"), (b, "b"))]
+        k, _in_thread(lambda: store.save(n, ws))[0])) for n, k in ((a, "a"), (b, "b"))]
     for t in threads:
         t.start()
     for t in threads:
@@ -107,25 +112,31 @@ def test_a_child_forked_by_a_writer_does_not_keep_the_lock(tmp_path):
     ws = tmp_path / "ws"
     ws.mkdir()
     read_end, write_end = os.pipe()
+    # The worker lives until the test lets it go (closes ``release``), not for a time:
+    # before, it slept 5 s, and a test slower than that checked a lock nobody could hold.
+    release, released = os.pipe()
     writer = os.fork()
     if writer == 0:
         try:
             with writer_lock(ws, "grow", 0):
                 worker = os.fork()
                 if worker == 0:
-                    time.sleep(5)
+                    os.close(released)
+                    os.read(release, 1)  # returns when every write end is closed
                     os._exit(0)
                 os.write(write_end, str(worker).encode())
         finally:
             os._exit(0)  # the writer dies holding the lock; its worker lives on
+    os.close(release)
     os.waitpid(writer, 0)
     worker = int(os.read(read_end, 64))
     try:
         assert os.path.exists(f"/proc/{worker}")
         with writer_lock(ws, "seal", 0):  # BusyError here was the hole
             pass
+        assert os.path.exists(f"/proc/{worker}")  # it still held its copy all along
     finally:
-        os.kill(worker, signal.SIGKILL)  # a grandchild: init reaps it
+        os.close(released)  # the worker (a grandchild, reaped by init) ends
 
 
 def test_a_lock_file_that_is_a_fifo_or_a_folder_is_never_waited_on(tmp_path):
@@ -425,7 +436,7 @@ def test_a_reader_lock_held_for_ever_stops_readers_in_one_sentence(tmp_path, mon
     holder = os.open(ws / ".reader.lock", os.O_RDONLY)
     try:
         fcntl.flock(holder, fcntl.LOCK_EX)
-        kind, exc = _in_thread(lambda: store.load(ws), 10)
+        kind, exc = _in_thread(lambda: store.load(ws))
         assert kind == "raised" and isinstance(exc, BusyError), (kind, exc)
         assert "reader lock" in str(exc) and exc.exit_code == 3
     finally:
