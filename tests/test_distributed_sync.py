@@ -2,8 +2,8 @@
 the batch is divided among the ranks, norm statistics are synchronised, and gradients
 are averaged.
 
-Two CPU ranks over loopback (gloo). The process group gets a short timeout, so a lost
-collective (one rank waiting for a sync the other never joins) fails within seconds
+Two CPU ranks over loopback (gloo). The process group gets a shorter timeout, so a lost
+collective (one rank waiting for a sync the other never joins) fails within minutes
 with a message instead of hanging for gloo's default 30 minutes.
 
 Outside references: the gradient each rank computes on its own rows without DDP
@@ -29,9 +29,10 @@ from colonnade.training.distributed import DistributedHooks
 from colonnade.training.fit import fit_task
 
 WORLD = 2
-# Long enough for a loaded 2-core machine to reach every collective, short enough that a
-# lost sync fails the test in under a minute (gloo's default is 30 minutes).
-TIMEOUT = datetime.timedelta(seconds=45)
+# Only a lost sync is detected with it, so it is generous: a loaded 2-core machine must
+# never read as one (torch's import alone took 9.4 s here with two busy loops running);
+# a lost sync still fails in minutes, not after gloo's default 30.
+TIMEOUT = datetime.timedelta(seconds=180)
 # float32 sums in another order (DDP's all-reduce against a hand average): a few units of
 # binary32 roundoff (2**-24) on gradients of order 1; our bound.
 ATOL = 1e-6
@@ -62,10 +63,12 @@ def _gather(t: torch.Tensor) -> list[torch.Tensor]:
     return out
 
 
-def _worker(rank: int, port: int, folder: str) -> None:
-    os.environ.update(MASTER_ADDR="127.0.0.1", MASTER_PORT=str(port))
+def _worker(rank: int, folder: str) -> None:
     torch.set_num_threads(1)
-    dist.init_process_group("gloo", rank=rank, world_size=WORLD, timeout=TIMEOUT)
+    # The ranks meet through a file (torch.distributed's file:// rendezvous), not a port:
+    # a port found free and then bound seconds later by rank 0 can be taken meanwhile.
+    dist.init_process_group("gloo", init_method=f"file://{folder}/rendezvous", rank=rank,
+                            world_size=WORLD, timeout=TIMEOUT)
     try:
         hooks = DistributedHooks(rank, WORLD, torch.device("cpu"))
         results: dict[str, object] = {}
@@ -107,13 +110,8 @@ def _worker(rank: int, port: int, folder: str) -> None:
 
 @pytest.fixture(scope="module")
 def ranks(tmp_path_factory):
-    import socket
-
     folder = tmp_path_factory.mktemp("ddp")
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        port = s.getsockname()[1]
-    mp.start_processes(_worker, args=(port, str(folder)), nprocs=WORLD, join=True,
+    mp.start_processes(_worker, args=(str(folder),), nprocs=WORLD, join=True,
                        start_method="spawn")
     return [torch.load(folder / f"rank{r}.pt", weights_only=False) for r in range(WORLD)]
 
