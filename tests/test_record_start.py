@@ -163,12 +163,13 @@ def test_record_start_waits_for_another_writer(made, tmp_path, capsys):
     import sys
 
     ws = _copy(made, tmp_path)
+    # The holder holds until its stdin closes (the test kills it anyway), not for a time.
     holder = subprocess.Popen(
-        [sys.executable, "-c", "import sys, time\n"
+        [sys.executable, "-c", "import sys\n"
          "from colonnade.files.lock import writer_lock\n"
          "with writer_lock(sys.argv[1], 'grow'):\n"
-         "    print('held', flush=True); time.sleep(60)\n", str(ws)],
-        stdout=subprocess.PIPE, text=True)
+         "    print('held', flush=True); sys.stdin.read()\n", str(ws)],
+        stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True)
     try:
         assert holder.stdout.readline().strip() == "held"
         before = yaml.safe_load((ws / store.MANIFEST).read_text())
