@@ -22,6 +22,7 @@ from ..evidence.adoption import prove_adoption
 from ..evidence.seal import Probe, load_probe, seal_task
 from ..files.store import create
 from ..model.adopted import AdoptedColumn, adopt_exported, adopt_module, adopt_onnx
+from ..model.budget import readable_bytes, tensor_budget
 from ..model.digest import bytes_digest, raw_bytes
 from ..model.network import ProgressiveNet
 from ..model.schema import Spec
@@ -31,6 +32,7 @@ from .transaction import attribution
 __all__ = ["adopt", "adopt_workspace", "MODEL_FORMATS"]
 
 MODEL_FORMATS = {".pt2": "a torch.export program", ".onnx": "an ONNX model"}
+ONNX_MAX_BYTES = 2**31 - 1  # protobuf's limit on one serialized message (an ONNX file)
 
 
 def _spec(spec: Any) -> Spec:
@@ -50,6 +52,15 @@ def _read_model(path: str | Path) -> tuple[bytes, str]:
         raise UsageError(f"{path}: adopt reads a torch.export program (.pt2) or an ONNX model "
                          f"(.onnx); from Python, pass the nn.Module itself")
     try:
+        size = path.stat().st_size  # checked before a byte is read (invariant 12)
+        if suffix == ".onnx" and size > ONNX_MAX_BYTES:
+            raise DataError(f"{path}: is {readable_bytes(size)}, larger than the 2 GiB one "
+                            f"ONNX file can hold (protobuf's limit); adopt a model that is "
+                            f"one file under 2 GiB")
+        if size > tensor_budget():
+            raise DataError(f"{path}: is {readable_bytes(size)}, more than half of this "
+                            f"machine's memory ({readable_bytes(tensor_budget())}); adopt it "
+                            f"on a machine with more memory")
         return path.read_bytes(), suffix
     except FileNotFoundError:
         raise DataError(f"{path}: no such model file") from None
@@ -106,6 +117,9 @@ def adopt(model: Any, input_shape: Sequence[int] | None = None, task: str = "ado
                              "runtime_version": record.runtime_version,
                              "sha256": record.sha256, "taps": list(record.taps),
                              "classes": record.classes}
+    outputs = getattr(column._runner[0], "outputs", None)
+    if outputs is not None:  # an ONNX graph: its first output is the task's logits
+        entry["outputs"] = list(outputs)
     if probe is not None:
         loaded = _probe(probe, net, task, folder)
         entry["probe"] = {"path": loaded.path, "sha256": loaded.sha256,
@@ -139,5 +153,5 @@ def adopt_workspace(model: Any, folder: str | Path, task: str, taps: Sequence[st
     sealed = seal_task(net, task, loaded) if seal else None
     create(net.spec, folder, net, who=who)
     return {"task": task, "workspace": str(folder), "adopted": net.adopted.record.to_dict(),
-            "proof": entry["proof"], "probe": entry["probe"],
+            "proof": entry["proof"], "probe": entry["probe"], "outputs": entry.get("outputs"),
             "seal": None if sealed is None else sealed["version"]}

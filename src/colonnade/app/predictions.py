@@ -68,7 +68,8 @@ class PredictionTable:
                 row.append(_name(info, preds[info.name][i]))
                 row += [f"{v:.9g}" for v in values[info.name][i]]
             writer.writerow(row)
-        return buf.getvalue().encode("utf-8")
+        # surrogateescape: a file name that is not valid UTF-8 is written as its own bytes
+        return buf.getvalue().encode("utf-8", "surrogateescape")
 
     def npz_bytes(self, all_tasks: bool) -> bytes:
         arrays: dict[str, np.ndarray] = {}

@@ -26,6 +26,10 @@ def _adopt(args: argparse.Namespace) -> int:
     print(f"adopted {args.model} ({record['format']}, run by {record['runtime']} "
           f"{record['runtime_version']}) as column 0 of {result['workspace']}, task "
           f"{result['task']!r} with {record['classes']} classes")
+    outputs = result.get("outputs") or []
+    if len(outputs) > 1:
+        print(f"logits: the model's first output {outputs[0]!r}; its other outputs "
+              f"({', '.join(repr(o) for o in outputs[1:])}) are not read")
     if record.get("sha256"):
         print(f"model file SHA-256 {record['sha256']}")
     print("taps: " + ", ".join(f"{t} {s}" for t, s in zip(record["taps"], record["tap_shapes"],

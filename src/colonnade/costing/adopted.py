@@ -8,7 +8,9 @@ model itself, each from a named source:
   (FLOPs / 2; it counts matrix products and convolutions, the same rule as ``costs.py``);
   parameters are the ``numel`` of the module's parameters.
 * ONNX models: MACs are counted from the graph's shapes after ``onnx.shape_inference``
-  with the batch pinned to 1: Conv (output elements x input channels per group x kernel
+  (with data propagation) with the batch pinned to 1, and for a value whose shape it
+  cannot tell (a Reshape to a size computed from the input's Shape), from one onnxruntime
+  run of that pinned graph on zeros: Conv (output elements x input channels per group x kernel
   elements), Gemm (M x N x K) and MatMul (output elements x the reduced dimension); every
   other operator counts none, as FlopCounterMode does. Parameters are the elements of
   the graph's floating-point initializers.
@@ -62,7 +64,34 @@ def _pinned(model: Any, input_shape: tuple[int, ...]) -> Any:
     for dim, size in zip(value.type.tensor_type.shape.dim, (1, *input_shape), strict=True):
         dim.Clear()
         dim.dim_value = size
-    return onnx.shape_inference.infer_shapes(pinned, strict_mode=False)
+    return onnx.shape_inference.infer_shapes(pinned, strict_mode=False, data_prop=True)
+
+
+def _measured(model: Any, names: list[str]) -> dict[str, list[int]]:
+    """Shapes shape inference could not tell (a Reshape to a size computed from the
+    input's Shape, say), read from one onnxruntime run of the pinned model on zeros."""
+    import numpy as np
+    import onnx
+    import onnxruntime as ort
+
+    probe = onnx.ModelProto()
+    probe.CopyFrom(model)
+    types = {v.name: v.type.tensor_type.elem_type for v in probe.graph.value_info}
+    listed = {o.name for o in probe.graph.output}
+    for name in names:
+        if name not in listed:
+            probe.graph.output.append(onnx.ValueInfoProto(name=name))
+            probe.graph.output[-1].type.tensor_type.elem_type = \
+                types.get(name) or onnx.TensorProto.FLOAT
+    inits = {i.name for i in probe.graph.initializer}
+    value = next(i for i in probe.graph.input if i.name not in inits)
+    dims = [d.dim_value for d in value.type.tensor_type.shape.dim]
+    options = ort.SessionOptions()
+    options.intra_op_num_threads = 1
+    session = ort.InferenceSession(probe.SerializeToString(), options,
+                                   providers=["CPUExecutionProvider"])
+    outs = session.run(names, {value.name: np.zeros(dims, np.float32)})
+    return {name: list(out.shape) for name, out in zip(names, outs, strict=True)}
 
 
 def onnx_graph_macs(data: bytes, input_shape: tuple[int, ...]) -> tuple[int, int]:
@@ -73,14 +102,20 @@ def onnx_graph_macs(data: bytes, input_shape: tuple[int, ...]) -> tuple[int, int
     model = _pinned(onnx.load_from_string(data), tuple(input_shape))
     shapes: dict[str, list[int]] = {}
     for value in [*model.graph.input, *model.graph.value_info, *model.graph.output]:
-        dims = value.type.tensor_type.shape.dim
-        if all(d.HasField("dim_value") for d in dims):
-            shapes[value.name] = [d.dim_value for d in dims]
+        typed = value.type.tensor_type
+        # A value without a shape field has an unknown rank, not the shape [] of a scalar.
+        if typed.HasField("shape") and all(d.HasField("dim_value") for d in typed.shape.dim):
+            shapes[value.name] = [d.dim_value for d in typed.shape.dim]
     params = 0
     for init in model.graph.initializer:
         shapes[init.name] = list(init.dims)
         if numpy_helper.to_array(init).dtype.kind == "f":
             params += math.prod(init.dims)
+    counted = [n for n in model.graph.node if n.op_type in ("Conv", "Gemm", "MatMul")]
+    unknown = sorted({name for n in counted for name in (n.input[0], n.input[1], n.output[0])
+                      if name not in shapes})
+    if unknown:
+        shapes.update(_measured(model, unknown))
     macs = 0
     for node in model.graph.node:
         if node.op_type == "Conv":

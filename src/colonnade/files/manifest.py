@@ -15,12 +15,13 @@ read-only verbs start fast.
 
 from __future__ import annotations
 
+import re
 from pathlib import Path
 from typing import Any
 
 import yaml
 
-from ..errors import WorkspaceError
+from ..errors import DataError, WorkspaceError
 from ..model.yamlfile import load_yaml
 from .limits import MAX_MANIFEST_BYTES, MAX_MANIFEST_VALUES, read_bounded
 
@@ -46,6 +47,23 @@ class _NoAliasDumper(yaml.SafeDumper):
 
     def ignore_aliases(self, data: Any) -> bool:
         return True
+
+    def represent_text(self, data: str) -> Any:
+        """A string, refused if it holds a lone surrogate: Python's stand-in for a byte
+        of a file name or argument that is not UTF-8. PyYAML would write it as an escape
+        that no YAML reader accepts, so the committed manifest could never be read again."""
+        bad = _SURROGATE.search(data)
+        if bad:
+            raw = data.encode("utf-8", "surrogateescape")  # the name's own bytes
+            shown = raw.decode("ascii", "backslashreplace")[:80]
+            raise DataError(f"the name '{shown}' is not valid UTF-8 text (a file or folder "
+                            f"name, or an argument, in another encoding), and a workspace "
+                            f"records text in UTF-8 only; rename it in UTF-8")
+        return self.represent_str(data)
+
+
+_NoAliasDumper.add_representer(str, _NoAliasDumper.represent_text)
+_SURROGATE = re.compile("[\ud800-\udfff]")
 
 
 def manifest_text(manifest: dict[str, Any]) -> str:

@@ -158,11 +158,18 @@ def save(net: ProgressiveNet, folder: str | Path, who: Attribution | None = None
             retired = set((current or {}).get("files") or {})
             write_generation(folder, files, manifest_text(manifest), note, retired)
         except BaseException:
-            if before is not None and _head(read_manifest(folder)) != _head(manifest):
+            if before is not None and _committed_head(folder) != _head(manifest):
                 history[:] = before
             raise
         finally:
-            net.meta[LOADED_HEAD] = _head(read_manifest(folder))
+            net.meta[LOADED_HEAD] = _committed_head(folder)
+
+
+def _committed_head(folder: Path) -> str | None:
+    """The record head of the workspace's current manifest; None while ``create`` has not
+    committed one yet (so a failure before the first commit is reported as itself, not as
+    a missing manifest)."""
+    return _head(read_manifest(folder)) if (folder / MANIFEST).exists() else None
 
 
 def _only_created(manifest: dict[str, Any]) -> bool:

@@ -186,6 +186,10 @@ def _probe_shapes(runner: ModuleTaps | OnnxTaps, input_shape: Shape, what: str,
         raise DataError(f"{what} rejects an input of sample shape {list(input_shape)} "
                         f"({exc.__class__.__name__}); give the input shape it was "
                         f"certified on") from None
+    if isinstance(logits, (tuple, list, dict)):
+        raise DataError(f"{what} returns {len(logits)} outputs (a {type(logits).__name__}), "
+                        f"not one tensor of logits; adopt a model whose only output is the "
+                        f"task's logits [N, classes] (wrap it to return the one you mean)")
     if not isinstance(logits, torch.Tensor) or logits.dim() != 2 or logits.shape[0] != 2:
         shape = list(logits.shape) if isinstance(logits, torch.Tensor) else type(logits).__name__
         raise DataError(f"{what} returns {shape} for 2 samples, not logits of shape "

@@ -108,6 +108,11 @@ def load_exported_program(data: bytes, path: str = "model.pt2") -> torch.export.
     if len(roots) != 1:
         raise DataError(f"{path}: not a torch.export archive (expected one top-level folder)")
     root = roots.pop()
+    if f"{root}/models/model.json" not in names:  # checked first: a torch.save file is a zip too
+        raise DataError(f"{path}: not a torch.export program (the archive holds no "
+                        f"models/model.json; a file written by torch.save is not one); save "
+                        f"the model with torch.export.save(torch.export.export(model, (x,)), "
+                        f"PATH)")
     for name in names:
         if name.endswith("/"):
             continue

@@ -15,6 +15,7 @@ recorded in the workspace.
 from __future__ import annotations
 
 import difflib
+import re
 from collections.abc import Callable
 from typing import Any
 
@@ -114,8 +115,13 @@ class OnnxTaps:
         onnx, ort = _import_onnx()
         try:
             model = onnx.load_from_string(data)
-            onnx.checker.check_model(model)
         except Exception:  # onnx raises several kinds for a file that is not ONNX
+            model = None
+        if model is not None:
+            _check_self_contained(onnx, model, path)  # before the checker looks for files
+        try:
+            onnx.checker.check_model(model)
+        except Exception:
             raise DataError(f"{path}: not a valid ONNX model; export it with "
                             f"torch.onnx.export or check the file") from None
         inits = {i.name for i in model.graph.initializer}
@@ -125,12 +131,16 @@ class OnnxTaps:
                             f"the logits as its first output; it has {len(inputs)} inputs")
         self.input_name = inputs[0].name
         self.output_name = model.graph.output[0].name
+        self.outputs = [o.name for o in model.graph.output]
+        _check_float(onnx, inputs[0], f"{path}: the ONNX model's input {self.input_name!r}",
+                     "export it with a float32 input")
         _check_pinnable(inputs[0], input_shape, path)
         values = [o for node in model.graph.node for o in node.output if o]
         for tap in taps:
             if tap not in values:
                 raise UsageError(f"the ONNX model has no value named {tap!r}; the nearest "
                                  f"names are: {nearest_names(tap, values)}")
+        _check_tap_types(onnx, model, taps)
         existing = {o.name for o in model.graph.output}
         for tap in taps:  # extra outputs only: no node is added, removed or changed
             if tap not in existing:
@@ -139,15 +149,13 @@ class OnnxTaps:
         self.taps = list(taps)
         self.data = data
         self.tapped = model.SerializeToString()  # the file's graph plus the tap outputs
-        self.session = ort.InferenceSession(self.tapped, _ort_options(ort),
-                                            providers=[ORT_SETTINGS["provider"]])
+        self.session = _session(ort, self.tapped, path)
         self.version = ort.__version__
 
     def original(self) -> Callable[[torch.Tensor], torch.Tensor]:
         """The unmodified model alone, in a session with the same settings."""
         _, ort = _import_onnx()
-        session = ort.InferenceSession(self.data, _ort_options(ort),
-                                       providers=[ORT_SETTINGS["provider"]])
+        session = _session(ort, self.data, "the ONNX model")
 
         def run(x: torch.Tensor) -> torch.Tensor:
             feed = {self.input_name: x.detach().cpu().numpy()}
@@ -159,6 +167,55 @@ class OnnxTaps:
         outs = self.session.run([self.output_name, *self.taps], feed)
         tensors = [torch.from_numpy(np.ascontiguousarray(o)).to(x.device) for o in outs]
         return tensors[1:], tensors[0]
+
+
+def _session(ort: Any, data: bytes, path: str) -> Any:
+    """An onnxruntime session with ``ORT_SETTINGS``; a model it cannot run is refused in
+    one sentence with onnxruntime's own reason (an operator it does not implement, an
+    operator set it does not know, types that do not fit)."""
+    try:
+        return ort.InferenceSession(data, _ort_options(ort), providers=[ORT_SETTINGS["provider"]])
+    except Exception as exc:  # onnxruntime raises its own Fail, InvalidGraph, ... kinds
+        text = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        reason = re.sub(r"^\[ONNXRuntimeError\] : \d+ : \w+ : ", "", text)
+        reason = re.sub(r"\S*onnxruntime_src\S* \S.*?\) ", "", reason)
+        if len(reason) > 200:  # onnxruntime's reasons run long: whole sentences up to 200
+            reason = reason[:200].rsplit(". ", 1)[0] if ". " in reason[:200] else reason[:200]
+        reason = reason.rstrip(" .")
+        raise DataError(f"{path}: onnxruntime {ort.__version__} cannot run this model "
+                        f"({reason}); export it with operators and an operator set that "
+                        f"onnxruntime's CPU provider runs") from None
+
+
+def _check_self_contained(onnx: Any, model: Any, path: str) -> None:
+    """The weights must be inside the file: colonnade keeps and digests that one file, so
+    a model whose tensors live in separate files (ONNX external data) is refused."""
+    if any(init.data_location == onnx.TensorProto.EXTERNAL for init in model.graph.initializer):
+        raise DataError(f"{path}: keeps its weights in separate files (ONNX external data), "
+                        f"which colonnade cannot keep with the model; save it as one file "
+                        f"with onnx.save(onnx.load(PATH), NEW_PATH)")
+
+
+def _check_float(onnx: Any, value: Any, what: str, fix: str) -> None:
+    elem = value.type.tensor_type.elem_type
+    if elem not in (0, onnx.TensorProto.FLOAT):  # 0: not known before the model runs
+        name = onnx.TensorProto.DataType.Name(elem).lower() \
+            if elem in onnx.TensorProto.DataType.values() else f"type {elem}"
+        raise DataError(f"{what} holds {name} values, and colonnade reads float32; {fix}")
+
+
+def _check_tap_types(onnx: Any, model: Any, taps: list[str]) -> None:
+    """A tap must hold float32 values (a shape or an index is not a feature); types come
+    from onnx.shape_inference, and a type it cannot tell is left to onnxruntime."""
+    try:
+        inferred = onnx.shape_inference.infer_shapes(model, strict_mode=False)
+    except Exception:  # inference is a courtesy here: onnxruntime has the last word
+        return
+    known = {v.name: v for v in [*inferred.graph.value_info, *inferred.graph.output]}
+    for tap in taps:
+        if tap in known:
+            _check_float(onnx, known[tap], f"tap {tap!r}", "choose a value that holds "
+                         "features (a layer's output)")
 
 
 def _check_pinnable(value: Any, input_shape: Shape, path: str) -> None:

@@ -7,7 +7,8 @@ reproducible as its input pipeline:
 
 * image -> ``[C, H, W]``: converted to ``L`` (C=1), ``RGB`` (C=3) or ``RGBA`` (C=4) by
   Pillow's ``convert``; resized to the spec's ``W x H`` with bilinear filtering when its
-  size differs; values divided by 255 (by 65535 for 16-bit greyscale), so in [0, 1].
+  size differs; values divided by 255 (by 65535 for 16-bit greyscale, which fills every
+  colour channel of a 3- or 4-channel spec, alpha opaque), so in [0, 1].
 * waveform -> ``[channels, length]`` (or ``[length]`` for a mono spec): samples as
   float32 in [-1, 1] (soundfile's scaling of integer PCM); longer files are cut to their
   first ``length`` frames, shorter ones padded with zeros at the end; the channel count
@@ -98,12 +99,18 @@ class Decoder:
         try:
             with Image.open(path) as img:
                 img.load()
-                sixteen = c == 1 and img.mode in ("I;16", "I;16B", "I;16L", "I")
+                # 16-bit greyscale is read as "F" whatever the spec's channels: Pillow's
+                # conversion of it to RGB or RGBA clips every value above 255 to white.
+                sixteen = img.mode in ("I;16", "I;16B", "I;16L", "I")
                 img = img.convert("F") if sixteen else img.convert(_IMAGE_MODES[c])
                 if img.size != (w, h):
                     img = img.resize((w, h), Image.Resampling.BILINEAR)
                     self.resized += 1
                 values = np.asarray(img, dtype=np.float32)
+                if sixteen and c > 1:  # grey into every colour channel, opaque, as L does
+                    values = np.repeat(values[..., None], c, axis=2)
+                    if c == 4:
+                        values[..., 3] = 65535.0
         except (UnidentifiedImageError, OSError, ValueError, Image.DecompressionBombError,
                 SyntaxError) as exc:
             raise BadFile(f"cannot read it as an image ({_reason(exc)})") from None

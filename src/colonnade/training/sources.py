@@ -255,7 +255,9 @@ def _folder_entries(path: Path, need_labels: bool,
         return _index_entries(path / INDEX_FILE, need_labels)
     entries = _visible(path)
     folders = [p for p in entries if p.is_dir()]
-    files = [p for p in entries if p.is_file()]
+    # Anything else is a sample, read (or refused) as one: a broken or looping symbolic
+    # link must be named, not silently left out of the data.
+    files = [p for p in entries if not p.is_dir()]
     if folders and files:
         raise DataError(f"{path}: holds both class folders and loose files ("
                         f"{files[0].name}); keep one folder per class, or only files for "
@@ -271,7 +273,7 @@ def _folder_entries(path: Path, need_labels: bool,
     out_files: list[Path] = []
     labels: list[str] = []
     for folder in folders:
-        inside = [p for p in _visible(folder) if p.is_file()]
+        inside = [p for p in _visible(folder) if not p.is_dir()]
         if not inside:
             raise DataError(f"{folder}: the class folder holds no files; remove it or add "
                             f"samples")
@@ -306,6 +308,14 @@ def _index_entries(path: Path, need_labels: bool,
     return files, (labels if li is not None else None), None
 
 
+def _not_a_file(path: Path) -> str:
+    if path.is_symlink():
+        return "it is a symbolic link that leads to no file (broken, or in a loop)"
+    if path.exists():
+        return "it is not a regular file"
+    return "no such file"
+
+
 def _read_files(origin: Path, entries: tuple[list[Path], list[str] | None, list[str] | None],
                 shape: tuple[int, ...], skip_bad: bool, rate: int | None,
                 budget_bytes: int) -> Source:
@@ -320,7 +330,7 @@ def _read_files(origin: Path, entries: tuple[list[Path], list[str] | None, list[
     for i, f in enumerate(files):
         try:
             if not f.is_file():
-                raise BadFile("no such file")
+                raise BadFile(_not_a_file(f))
             sample = decoder(f)
         except BadFile as exc:
             if not skip_bad:
@@ -439,7 +449,10 @@ def source_digest(path: str | Path, labels: str | Path | None = None) -> str:
     if path.is_dir():
         for file in sorted(p for p in path.rglob("*") if p.is_file()
                            and not any(part.startswith(".") for part in p.relative_to(path).parts)):
-            whole.update(f"{file.relative_to(path).as_posix()}\0{_file_sha256(file)}\n".encode())
+            # os.fsencode: a name's own bytes (UTF-8 for every valid name, so digests are
+            # unchanged), also for a name that is not valid UTF-8.
+            whole.update(os.fsencode(file.relative_to(path).as_posix()) + b"\0"
+                         + f"{_file_sha256(file)}\n".encode())
     else:
         whole.update(f"samples\0{_file_sha256(path)}\n".encode())
     if labels is not None:
