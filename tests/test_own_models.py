@@ -30,7 +30,7 @@ import colonnade.app.adopt as adopt_app
 import colonnade.files.store as store
 from colonnade.cli import main
 from colonnade.costing.adopted import adopted_cost
-from colonnade.errors import DataError
+from colonnade.errors import DataError, UsageError
 from colonnade.evidence.artifact import ONNX_TOLERANCE
 from colonnade.files.store import create, load
 
@@ -184,7 +184,8 @@ def test_two_outputs_onnx_names_the_one_it_reads_and_a_program_is_refused(tmp_pa
     assert code == 0
     assert "logits: the model's first output 'a'; its other outputs ('b') are not read" \
         in capsys.readouterr().out
-    program = torch.export.export(TwoHeads(), (torch.zeros(2, 12),))
+    program = torch.export.export(TwoHeads(), (torch.zeros(2, 12),),
+                                  dynamic_shapes=({0: torch.export.Dim("batch")},))
     (tmp_path / "pt2").mkdir()
     torch.export.save(program, tmp_path / "pt2" / "two.pt2")
     err = _refused(tmp_path / "pt2", capsys, tmp_path / "pt2" / "two.pt2", "body")
@@ -235,7 +236,8 @@ def test_model_files_beyond_the_limits_are_refused_unread(tmp_path, capsys, monk
     with open(huge, "wb") as f:
         f.truncate(3 << 30)  # sparse: 3 GiB on paper, nothing on disk
     assert "larger than the 2 GiB" in _refused(tmp_path, capsys, huge, "h")
-    program = torch.export.export(TwoHeads(), (torch.zeros(2, 12),))
+    program = torch.export.export(TwoHeads(), (torch.zeros(2, 12),),
+                                  dynamic_shapes=({0: torch.export.Dim("batch")},))
     torch.export.save(program, tmp_path / "m.pt2")
     monkeypatch.setattr(adopt_app, "tensor_budget", lambda: 1000)
     assert "more than half of this machine's memory" in _refused(
@@ -243,3 +245,49 @@ def test_model_files_beyond_the_limits_are_refused_unread(tmp_path, capsys, monk
     with pytest.raises(DataError, match="more than half"):  # the Python API too
         colonnade.adopt(str(tmp_path / "m.pt2"), (12,), "t", ["body"], str(_spec(tmp_path, (12,))))
 
+
+
+def test_a_program_exported_with_a_fixed_batch_is_refused_saying_how(tmp_path, capsys):
+    program = torch.export.export(TwoHeads().body, (torch.zeros(1, 12),))  # torch's default
+    torch.export.save(program, tmp_path / "fixed.pt2")
+    # before: "rejects an input of sample shape [12] (RuntimeError)", a shape that was right
+    err = _refused(tmp_path, capsys, tmp_path / "fixed.pt2", "body")
+    assert "batch dimension is fixed at 1" in err and "Dim('batch')" in err
+
+
+def test_initializers_listed_as_inputs_adopt_without_onnxruntime_noise(tmp_path, capfd):
+    buf = io.BytesIO()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        torch.onnx.export(Signal(), (torch.zeros(2, *SIGNAL),), buf, dynamo=False,
+                          input_names=["x"], output_names=["y"], opset_version=18,
+                          dynamic_axes={"x": {0: "n"}}, keep_initializers_as_inputs=True)
+    model = tmp_path / "old_style.onnx"
+    model.write_bytes(buf.getvalue())
+    assert len(onnx.load(model).graph.input) > 1  # the weights are graph inputs too
+    capfd.readouterr()
+    code, _ = _adopt(tmp_path, model, "/relu/Relu_output_0", SIGNAL)
+    # before: onnxruntime's C++ log wrote one warning per initializer to stderr (fd 2)
+    assert code == 0 and capfd.readouterr().err == ""
+
+
+class Recurrent(nn.Module):
+    """A GRU over a signal's time steps: the GRU module's output is a tuple."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        torch.manual_seed(3)
+        self.gru, self.fc = nn.GRU(2, 8, batch_first=True), nn.Linear(8, 3)
+        self.eval()
+
+    def forward(self, x):
+        return self.fc(self.gru(x.transpose(1, 2))[0][:, -1])
+
+
+def test_a_tap_whose_output_is_a_tuple_is_named_as_such(tmp_path):
+    spec = str(_spec(tmp_path, SIGNAL))
+    # before: "tap 'gru' ran a tensor in one forward pass, not once with one tensor"
+    with pytest.raises(UsageError, match=r"tap 'gru' gives a tuple, not one tensor"):
+        colonnade.adopt(Recurrent(), SIGNAL, "t", ["gru"], spec)
+    net = colonnade.adopt(Recurrent(), SIGNAL, "t", ["fc"], spec)  # a tensor tap is fine
+    assert net.adopted.record.tap_shapes == [[3]]

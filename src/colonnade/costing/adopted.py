@@ -88,6 +88,7 @@ def _measured(model: Any, names: list[str]) -> dict[str, list[int]]:
     dims = [d.dim_value for d in value.type.tensor_type.shape.dim]
     options = ort.SessionOptions()
     options.intra_op_num_threads = 1
+    options.log_severity_level = 3  # errors only, as every session of colonnade's
     session = ort.InferenceSession(probe.SerializeToString(), options,
                                    providers=["CPUExecutionProvider"])
     outs = session.run(names, {value.name: np.zeros(dims, np.float32)})

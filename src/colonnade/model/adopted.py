@@ -240,7 +240,12 @@ def _exported_input_shape(ep: Any, path: str) -> Shape:
         raise DataError(f"{path}: the program takes {len(placeholders)} inputs; adopt a "
                         f"model that takes one input tensor")
     val = placeholders[0].meta.get("val")
-    dims = list(getattr(val, "shape", []))[1:]
+    shape = list(getattr(val, "shape", []))
+    if shape and isinstance(shape[0], int):  # torch.export's default: the example's batch
+        raise DataError(f"{path}: the program's batch dimension is fixed at {shape[0]}; "
+                        f"export it with a dynamic batch axis: torch.export.export(model, "
+                        f"(x,), dynamic_shapes=({{0: torch.export.Dim('batch')}},))")
+    dims = shape[1:]
     if not all(isinstance(d, int) for d in dims):
         raise DataError(f"{path}: the program's sample shape {dims} is symbolic beyond the "
                         f"batch dimension and cannot be pinned; export it with a fixed "

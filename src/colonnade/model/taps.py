@@ -78,10 +78,12 @@ class ModuleTaps:
         taps = []
         for tap in self.taps:
             outs = seen.get(tap, [])
-            if len(outs) != 1 or not isinstance(outs[0], torch.Tensor):
-                what = "a tensor" if len(outs) == 1 else f"{len(outs)} times"
-                raise UsageError(f"tap {tap!r} ran {what} in one forward pass, not once with "
-                                 f"one tensor; choose a submodule that runs once per input")
+            if len(outs) == 1 and not isinstance(outs[0], torch.Tensor):
+                raise UsageError(f"tap {tap!r} gives a {type(outs[0]).__name__}, not one "
+                                 f"tensor; choose a submodule whose output is one tensor")
+            if len(outs) != 1:
+                raise UsageError(f"tap {tap!r} ran {len(outs)} times in one forward pass, not "
+                                 f"once; choose a submodule that runs once per input")
             taps.append(outs[0])
         return taps, logits
 
@@ -92,6 +94,9 @@ def _ort_options(ort: Any) -> Any:
     options.inter_op_num_threads = ORT_SETTINGS["inter_op_num_threads"]
     options.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
     options.graph_optimization_level = ort.GraphOptimizationLevel.ORT_ENABLE_ALL
+    # Errors only: onnxruntime's C++ log would otherwise print a warning per initializer
+    # of a model that lists its initializers as graph inputs (older exporters do).
+    options.log_severity_level = 3
     return options
 
 
