@@ -26,7 +26,7 @@ from colonnade.files import store
 from colonnade.model import guard
 
 CHAIN_FIELDS = ("seq", "prev_sha256", "verb", "by", "state_sha256", "entry_sha256",
-                "signature")
+                "prev_signature_sha256", "signature")
 
 
 @pytest.fixture(scope="module")

@@ -89,7 +89,8 @@ def verify_manifest(manifest: Mapping[str, Any], text: bytes, canonical_text: st
     report.findings += text_findings(text, canonical_text, manifest_name)
     report.findings += verify_chain(manifest)
     report.findings += file_findings(manifest.get("files"), digest_of)
-    statuses, findings, notes = signature_report(history, trusted)
+    statuses, findings, notes = signature_report(history, trusted,
+                                                   manifest.get("record"))
     report.signatures, report.notes = statuses, notes
     report.findings += findings
     return report

@@ -38,7 +38,8 @@ __all__ = ["RECORD_FORMAT", "Attribution", "Finding", "RecordEntry", "canonical"
            "chained_prefix",
            "value_digest", "entry_digest", "state_digests", "extend", "verify_chain",
            "describe_entry", "typed_history", "default_author", "signature_required_from",
-           "unchain", "chain_found", "RECORD_STARTED"]
+           "unchain", "chain_found", "RECORD_STARTED", "signature_digest", "PREV_SIGNATURE",
+           "HEAD_SIGNATURE"]
 
 RECORD_FORMAT = "colonnade-record-1"
 RECORD_STARTED = "record_started"  # the step that chains a history written before the record
@@ -47,6 +48,15 @@ UNBOUND = ("history", "record")
 # Fields an entry's own digest leaves out: the digest itself and the signature over it.
 _UNDIGESTED = ("entry_sha256", "signature")
 _ENTRY_DOMAIN = b"colonnade record entry\n"
+_SIGNATURE_DOMAIN = b"colonnade record signature block\n"
+# Each entry binds the signature block of the entry before it (its digest, or null when
+# that entry is unsigned), and the record section the head's: a signature is outside the
+# digest of its own entry, so without this it could be removed, added or replaced by
+# another key's valid one, and ``check`` would still pass (``signing.signature_report``
+# checks the binding). Entries written before this field existed carry none.
+PREV_SIGNATURE = "prev_signature_sha256"
+HEAD_SIGNATURE = "head_signature_sha256"
+_RECORD_KEYS = {"format", "length", "head", "state"}
 _STATE_DOMAIN = b"colonnade record state\n"
 
 
@@ -156,6 +166,12 @@ def state_digests(manifest: Mapping[str, Any]) -> dict[str, str]:
     return out
 
 
+def signature_digest(entry: Any) -> str | None:
+    """The digest of an entry's signature block, None when it carries none."""
+    block = entry.get("signature") if isinstance(entry, Mapping) else None
+    return None if block is None else value_digest(block, _SIGNATURE_DOMAIN)
+
+
 def _state_digest(state: Mapping[str, str]) -> str:
     return value_digest(dict(state), _STATE_DOMAIN)
 
@@ -174,7 +190,7 @@ def describe_entry(entry: Any, seq: int) -> str:
 
 
 _KNOWN = ("seq", "step", "time", "by", "reason", "verb", "task", "prev_sha256", "entry_sha256",
-          "state_sha256", "signature")
+          "state_sha256", "signature", PREV_SIGNATURE)
 
 
 def typed_history(history: Any) -> list[RecordEntry]:
@@ -239,6 +255,7 @@ def extend(manifest: dict[str, Any], who: Attribution) -> list[dict[str, Any]]:
     state = state_digests(manifest)
     state_sha = _state_digest(state)
     prev = history[done - 1]["entry_sha256"] if done else None
+    prev_signature = signature_digest(history[done - 1]) if done else None
     author = who.author
     for offset, entry in enumerate(pending):
         if not isinstance(entry, dict):
@@ -251,13 +268,14 @@ def extend(manifest: dict[str, Any], who: Attribution) -> list[dict[str, Any]]:
             entry["reason"] = who.reason
         entry.setdefault("reason", None)
         entry["prev_sha256"] = prev
+        entry[PREV_SIGNATURE] = prev_signature
         entry["state_sha256"] = state_sha
         entry["entry_sha256"] = entry_digest(entry)
         if who.signer is not None:
             entry["signature"] = who.signer.sign(entry["entry_sha256"])
-        prev = entry["entry_sha256"]
+        prev, prev_signature = entry["entry_sha256"], signature_digest(entry)
     manifest["record"] = {"format": RECORD_FORMAT, "length": len(history), "head": prev,
-                          "state": state}
+                          "state": state, HEAD_SIGNATURE: prev_signature}
     return pending
 
 
@@ -299,7 +317,7 @@ def unchain(entries: list[dict[str, Any]]) -> None:
     a result made in a staging copy is committed into the workspace)."""
     for entry in entries:
         for key in ("seq", "prev_sha256", "verb", "by", "state_sha256", "entry_sha256",
-                    "signature"):
+                    "signature", PREV_SIGNATURE):
             entry.pop(key, None)
 
 
@@ -348,13 +366,15 @@ def verify_chain(manifest: Mapping[str, Any]) -> list[Finding]:
                         "history entry carries a digest); start its record with 'colonnade "
                         "record start WS --reason TEXT'", section="record")]
     out = _chain_findings(history)
+    head = history[-1] if isinstance(history[-1], Mapping) else {}
+    # A head written with the signature binding needs the record to name its signature.
+    keys = _RECORD_KEYS | ({HEAD_SIGNATURE} if PREV_SIGNATURE in head else set())
     if (not isinstance(record, Mapping) or not isinstance(record.get("state"), Mapping)
-            or set(record) != {"format", "length", "head", "state"}
+            or set(record) - {HEAD_SIGNATURE} != _RECORD_KEYS or not keys <= set(record)
             or record.get("format") != RECORD_FORMAT):
         out.append(Finding("the manifest's record section is missing or malformed, so the "
                            "state is not bound to the chain", section="record"))
         return out
-    head = history[-1] if isinstance(history[-1], Mapping) else {}
     n = len(history)
     if record.get("length") != n or record.get("head") != head.get("entry_sha256"):
         out.append(Finding(f"the history ends at entry {n} but the record's head names "

@@ -28,7 +28,14 @@ from cryptography.hazmat.primitives.asymmetric.ed25519 import (
 )
 
 from ..errors import UsageError
-from .record import Finding, describe_entry, signature_required_from
+from .record import (
+    HEAD_SIGNATURE,
+    PREV_SIGNATURE,
+    Finding,
+    describe_entry,
+    signature_digest,
+    signature_required_from,
+)
 
 __all__ = ["Signer", "TrustedKey", "EntrySignature", "signature_report", "key_id",
            "new_key_pems", "load_signer", "load_trusted", "check_signature",
@@ -178,7 +185,20 @@ class EntrySignature:
     key: str | None
 
 
+def _binding(history: list[Any], seq: int, record: Any) -> tuple[bool, Any, str]:
+    """Whether entry ``seq``'s signature block is bound, the digest bound, and by what: the
+    next entry's ``prev_signature_sha256``, or for the head the record section's."""
+    if seq < len(history):
+        after = history[seq]
+        if isinstance(after, Mapping) and PREV_SIGNATURE in after:
+            return True, after[PREV_SIGNATURE], describe_entry(after, seq + 1)
+    elif isinstance(record, Mapping) and HEAD_SIGNATURE in record:
+        return True, record[HEAD_SIGNATURE], "the record section"
+    return False, None, ""
+
+
 def signature_report(history: list[Any], trusted: list[TrustedKey] | None,
+                     record: Any = None,
                      ) -> tuple[list[EntrySignature], list[Finding], list[str]]:
     """Per-entry signature status, the findings that fail a check, and notes.
 
@@ -192,11 +212,17 @@ def signature_report(history: list[Any], trusted: list[TrustedKey] | None,
     findings: list[Finding] = []
     for seq, entry in enumerate(history, start=1):
         block = entry.get("signature") if isinstance(entry, Mapping) else None
+        ok, kid = (False, None) if block is None else check_signature(
+            block, str(entry.get("entry_sha256")))
+        bound, digest, by = _binding(history, seq, record)
+        if bound and digest != signature_digest(entry) and (block is None or ok):
+            # (a block that does not verify is named as such below)
+            findings.append(Finding(f"{describe_entry(entry, seq)}: its signature was "
+                                    f"{'removed' if block is None else 'added or replaced'} "
+                                    f"after it was committed ({by} binds another)", seq))
         if block is None:
             statuses.append(EntrySignature(seq, "unsigned", None))
-            continue
-        ok, kid = check_signature(block, str(entry.get("entry_sha256")))
-        if not ok:
+        elif not ok:
             statuses.append(EntrySignature(seq, "invalid", kid))
             findings.append(Finding(f"{describe_entry(entry, seq)}: its signature (key "
                                     f"{kid or 'unreadable'}) does not verify over its digest, "

@@ -84,6 +84,9 @@ def read_manifest(folder: str | Path) -> dict[str, Any]:
     if not path.is_file():
         raise WorkspaceError(f"{folder}: not a workspace (no {MANIFEST}); create one with "
                              f"'colonnade new SPEC -o {folder}'")
+    if path.is_symlink():  # like every file of a workspace (``limits.confined``)
+        raise WorkspaceError(f"{path}: is a symbolic link, and a workspace's manifest must lie "
+                             f"inside it; replace the link with the file it points to")
     data = read_bounded(path, MAX_MANIFEST_BYTES, "a manifest")
     try:
         text = data.decode("utf-8")
