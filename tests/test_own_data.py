@@ -15,11 +15,13 @@ import os
 
 import numpy as np
 import pytest
+import torch
 import yaml
 from conftest import snapshot
 from PIL import Image
 
 from colonnade.cli import main
+from colonnade.errors import DataError
 from colonnade.training.data import load_task_data
 from colonnade.training.sources import source_digest
 
@@ -120,3 +122,25 @@ def test_a_class_folder_name_that_is_not_utf8_is_refused_before_the_commit(tmp_p
     assert "not valid UTF-8" in err and "\\xff\\xfe" in err
     assert snapshot(ws) == before
     assert run("show", ws) == 0
+
+
+def test_a_float_wav_holding_nan_is_named_and_can_be_skipped(tmp_path, capsys):
+    import soundfile
+
+    rng = np.random.default_rng(2)
+    for c in ("a", "b"):
+        (tmp_path / "w" / c).mkdir(parents=True)
+        for i in range(3):
+            soundfile.write(tmp_path / "w" / c / f"{i}.wav",
+                            rng.uniform(-1, 1, 400).astype(np.float32), 8000, subtype="FLOAT")
+    wave = rng.uniform(-1, 1, 400).astype(np.float32)
+    wave[7] = np.nan
+    bad = tmp_path / "w" / "a" / "nan.wav"
+    soundfile.write(bad, wave, 8000, subtype="FLOAT")
+    assert np.isnan(soundfile.read(bad, dtype="float32")[0][7])  # soundfile's own reading
+    # before: "w: x[3]: holds 1 non-finite value(s)": the folder, not the file, and
+    # --skip-bad could not leave it out
+    with pytest.raises(DataError, match=r"nan\.wav: holds 1 non-finite sample"):
+        load_task_data(tmp_path / "w", (1, 400))
+    data = load_task_data(tmp_path / "w", (1, 400), skip_bad=True, split=False)
+    assert len(data.x) == 6 and bool(torch.isfinite(data.x).all())

@@ -131,6 +131,10 @@ class Decoder:
             frames, rate = soundfile.read(str(path), dtype="float32", always_2d=True)
         except (soundfile.LibsndfileError, RuntimeError, OSError, ValueError) as exc:
             raise BadFile(f"cannot read it as a waveform ({_reason(exc)})") from None
+        bad = int(np.count_nonzero(~np.isfinite(frames)))
+        if bad:  # a float WAV or FLAC may hold them; named here, with the file
+            raise BadFile(f"holds {bad} non-finite sample(s) (NaN or inf); clean the "
+                          f"recording")
         if self.rate is None:
             self.rate = int(rate)
         elif rate != self.rate:
