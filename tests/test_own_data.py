@@ -144,3 +144,25 @@ def test_a_float_wav_holding_nan_is_named_and_can_be_skipped(tmp_path, capsys):
         load_task_data(tmp_path / "w", (1, 400))
     data = load_task_data(tmp_path / "w", (1, 400), skip_bad=True, split=False)
     assert len(data.x) == 6 and bool(torch.isfinite(data.x).all())
+
+
+def test_only_verbs_that_have_skip_bad_suggest_it(tmp_path, ws, capsys):
+    root = _folder(tmp_path / "imgs", per_class=8)
+    assert run("grow", ws, "--task", "t", "--train", root, "--quiet") == 0
+    bad = root / "a" / "junk.png"
+    bad.write_bytes(b"junk")
+    capsys.readouterr()
+    for argv, offered in ((["grow", ws, "--task", "u", "--train", root, "--quiet"], True),
+                          (["predict", ws, "--task", "t", "--data", root, "-o",
+                            tmp_path / "p.csv"], True),
+                          (["seal", ws, "--task", "t", "--probe", root], False),
+                          (["usage", ws, "--task", "t", "--data", root], False),
+                          (["export", ws, "--task", "t", "-o", tmp_path / "t.onnx", "--int8",
+                            "--calibrate", root], False)):
+        assert run(*argv) == 2
+        err = capsys.readouterr().err.strip().splitlines()
+        assert err[-1].startswith("colonnade: error: ") and str(bad) in err[-1], err
+        # before: every verb said "pass --skip-bad", which seal, usage and export refuse
+        assert ("--skip-bad" in err[-1]) == offered, argv[0]
+        if offered:  # the flag the sentence names is that verb's, and does what it says
+            assert run(*argv, "--skip-bad") == 0, argv[0]

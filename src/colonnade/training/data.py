@@ -198,7 +198,7 @@ def load_task_data(path: str | Path, input_shape: tuple[int, ...], classes: int 
                    val_path: str | Path | None = None, val_fraction: float = 0.2,
                    seed: int = 0, need_labels: bool = True, split: bool = True,
                    class_names: Sequence[str] | None = None, labels: str | Path | None = None,
-                   skip_bad: bool = False, rate: int | None = None,
+                   skip_bad: bool | None = None, rate: int | None = None,
                    budget_bytes: int = DEFAULT_BUDGET_BYTES, content: bytes | None = None,
                    ) -> TaskData:
     """Load and check one task's data; validation from the file, ``val_path`` or a split.
@@ -211,7 +211,10 @@ def load_task_data(path: str | Path, input_shape: tuple[int, ...], classes: int 
     ``split=False`` keeps every sample, in file order, as ``x``/``y`` (prediction, probes).
     ``rate`` is the spec's waveform sample rate, ``budget_bytes`` how much decoded folder
     data may stay in memory. ``content``: the bytes of an .npz or CSV already in memory,
-    which ``path`` only names (nothing is opened).
+    which ``path`` only names (nothing is opened). ``skip_bad``: True leaves unreadable
+    files of a folder out; False refuses them and suggests ``--skip-bad``; None (verbs
+    without that option: seal, check, usage, trim, export, retrain) refuses them without
+    suggesting an option the verb does not have.
     """
     if classes is not None:
         check_class_count(classes, str(path))

@@ -317,7 +317,7 @@ def _not_a_file(path: Path) -> str:
 
 
 def _read_files(origin: Path, entries: tuple[list[Path], list[str] | None, list[str] | None],
-                shape: tuple[int, ...], skip_bad: bool, rate: int | None,
+                shape: tuple[int, ...], skip_bad: bool | None, rate: int | None,
                 budget_bytes: int) -> Source:
     """Decode every listed file once: refuse (or skip) bad ones, keep samples that fit."""
     files, labels, class_names = entries
@@ -333,9 +333,9 @@ def _read_files(origin: Path, entries: tuple[list[Path], list[str] | None, list[
                 raise BadFile(_not_a_file(f))
             sample = decoder(f)
         except BadFile as exc:
-            if not skip_bad:
-                raise DataError(f"{f}: {exc}; fix or remove the file, or pass --skip-bad "
-                                f"to leave bad files out") from None
+            if not skip_bad:  # None: the verb has no --skip-bad, so none is suggested
+                offer = "" if skip_bad is None else ", or pass --skip-bad to leave bad files out"
+                raise DataError(f"{f}: {exc}; fix or remove the file{offer}") from None
             bad.append(f"{f}: {exc}")
             continue
         good.append(f)
@@ -381,7 +381,7 @@ def _from_content(path: Path, content: bytes, need_labels: bool) -> Source:
 
 
 def open_source(path: str | Path, shape: tuple[int, ...], labels: str | Path | None = None,
-                need_labels: bool = True, skip_bad: bool = False, rate: int | None = None,
+                need_labels: bool = True, skip_bad: bool | None = None, rate: int | None = None,
                 budget_bytes: int = 1 << 30, content: bytes | None = None) -> Source:
     """Read the samples and raw labels at ``path``; ``labels`` is a ``.npy`` of labels.
 
