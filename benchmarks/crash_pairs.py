@@ -1,11 +1,18 @@
-"""Every pair of crashes: the grow killed at step i of its commit, the next write at step j.
+"""Every pair of crashes, and every step of every writing verb.
 
 Run with ``make crash`` (or ``.venv/bin/python benchmarks/crash_pairs.py [--jobs N]``).
-The test suite runs every single step and a sample of pairs (tests/test_crash.py); this
-runs the whole square, which takes too long for CI, and prints how many pairs were tried
-and how many held (opened, record verified, every sealed task exact, nothing committed
-lost, recovery recorded). Each case forks a real process that dies by ``os._exit`` at the
-chosen step (tests/crash_driver.py says exactly what a step is).
+Two batteries; the test suite runs a sample of each (tests/test_crash.py), this runs them
+whole, which takes too long for CI, and prints how many cases were tried and held:
+
+- pairs (tests/crash_driver.py): the grow killed at step i of its commit, the next write
+  (seal, or grow again) at step j, over the whole square; held means opened, record
+  verified, every sealed task exact, nothing committed lost, recovery recorded;
+- verbs (tests/crash_verbs.py): each writing verb (new, adopt, grow, seal, seal signed,
+  unseal, usage, trim, retrain, retire, record start, recover, export) killed at every
+  file-system step from taking the lock to its last clean-up; held means one whole
+  generation, old or new, recover, record verified, the next write succeeds.
+
+Each case forks a real process that dies by ``os._exit`` at the chosen step.
 """
 
 from __future__ import annotations
@@ -21,13 +28,30 @@ from pathlib import Path
 
 ROOT = Path(__file__).resolve().parent.parent
 DRIVER = ROOT / "tests" / "crash_driver.py"
+VERBS_DRIVER = ROOT / "tests" / "crash_verbs.py"
+VERBS = ["new", "adopt", "grow", "seal", "seal-signed", "unseal", "usage", "trim", "retrain",
+         "retire", "record-start", "recover", "export"]
 
 
-def _run(base: Path, out: Path, cases) -> subprocess.Popen:
+def _run(base: Path, out: Path, cases, driver: Path = DRIVER) -> subprocess.Popen:
     env = {**os.environ, "PYTHONPATH": f"{ROOT / 'src'}{os.pathsep}"
                                        f"{os.environ.get('PYTHONPATH', '')}"}
-    return subprocess.Popen([sys.executable, str(DRIVER), str(base), str(out),
+    return subprocess.Popen([sys.executable, str(driver), str(base), str(out),
                              json.dumps(cases)], stdout=subprocess.PIPE, text=True, env=env)
+
+
+def _verbs(tmp: Path, jobs: int) -> list[dict]:
+    """Every step of every writing verb, the verbs spread over ``jobs`` drivers."""
+    base = tmp / "verbs-base"
+    _run(base, tmp / "verbs-setup", {"verbs": [], "steps": "all"}, VERBS_DRIVER).communicate()
+    chunks = [VERBS[k::jobs] for k in range(jobs)]
+    procs = [_run(base, tmp / f"verbs{k}", {"verbs": chunk, "steps": "all"}, VERBS_DRIVER)
+             for k, chunk in enumerate(chunks) if chunk]
+    results = []
+    for proc in procs:
+        out, _ = proc.communicate()
+        results += [json.loads(line) for line in out.splitlines() if line.startswith("{")]
+    return results
 
 
 def main() -> int:
@@ -36,6 +60,8 @@ def main() -> int:
                         help="driver processes side by side (default: one per core)")
     parser.add_argument("--stride", type=int, default=1,
                         help="take every k-th step of each write (1: the whole square)")
+    parser.add_argument("--no-verbs", dest="verbs", action="store_false",
+                        help="the pairs only, not every step of every writing verb")
     args = parser.parse_args()
     start = time.monotonic()
     with tempfile.TemporaryDirectory(prefix="colonnade-crash-") as tmp:
@@ -53,15 +79,28 @@ def main() -> int:
         for proc in procs:
             out, _ = proc.communicate()
             results += [json.loads(line) for line in out.splitlines() if line.startswith("{")]
+        pairs_time = time.monotonic() - start
+        verbs = _verbs(Path(tmp), args.jobs) if args.verbs else []
     failed = [r for r in results if r["problems"]]
     pairs = sum(1 for r in results if r["first"] is not None and r["second"] is not None)
     print(f"grow commit: {first} steps; next write (seal or grow): {second} steps")
     print(f"cases tried: {len(results)} of {len(cases)} (pairs {pairs}, singles "
           f"{len(results) - pairs}); held: {len(results) - len(failed)}; "
-          f"failed: {len(failed)}; {time.monotonic() - start:.0f} s")
+          f"failed: {len(failed)}; {pairs_time:.0f} s")
     for case in failed[:10]:
         print(f"  first {case['first']} second {case['second']}: {case['problems']}")
-    return 1 if failed or len(results) != len(cases) else 0
+    verbs_failed = [r for r in verbs if r["problems"]]
+    if args.verbs:
+        steps = {r["verb"]: r.get("of") for r in verbs}
+        print("writing verbs, steps each: " + ", ".join(f"{v} {steps.get(v)}" for v in VERBS))
+        print(f"verb cases tried: {len(verbs)}; held: {len(verbs) - len(verbs_failed)}; "
+              f"failed: {len(verbs_failed)}; {time.monotonic() - start - pairs_time:.0f} s")
+        for case in verbs_failed[:10]:
+            print(f"  {case['verb']} killed at step {case['step']}: {case['problems']}")
+    expected_verbs = sum(n for n in steps.values() if n) if args.verbs else 0
+    return 1 if (failed or verbs_failed or len(results) != len(cases)
+                 or len(verbs) != expected_verbs or (args.verbs and None in steps.values())
+                 ) else 0
 
 
 if __name__ == "__main__":

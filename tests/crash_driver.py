@@ -22,7 +22,8 @@ import shutil
 import sys
 from pathlib import Path
 
-STEP_CALLS = ("open", "write", "fsync", "replace", "rename", "unlink", "mkdir", "ftruncate")
+STEP_CALLS = ("open", "write", "pwrite", "fsync", "replace", "rename", "unlink", "mkdir",
+              "rmdir", "ftruncate")
 _WRITE_FLAGS = os.O_WRONLY | os.O_RDWR | os.O_CREAT | os.O_TRUNC
 
 

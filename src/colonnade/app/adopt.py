@@ -17,10 +17,10 @@ import torch
 import torch.nn as nn
 
 from ..clock import now
-from ..errors import DataError, SpecError, UsageError, WorkspaceError
+from ..errors import DataError, SpecError, UsageError
 from ..evidence.adoption import prove_adoption
 from ..evidence.seal import Probe, load_probe, seal_task
-from ..files.store import create
+from ..files.store import create, require_creatable
 from ..model.adopted import AdoptedColumn, adopt_exported, adopt_module, adopt_onnx
 from ..model.budget import readable_bytes, tensor_budget
 from ..model.digest import bytes_digest, raw_bytes
@@ -141,9 +141,7 @@ def adopt_workspace(model: Any, folder: str | Path, task: str, taps: Sequence[st
     """
     who = attribution("adopt", by, reason, sign)  # a wrong key stops here, before any work
     folder = Path(folder)
-    if folder.exists() and (not folder.is_dir() or any(folder.iterdir())):
-        raise WorkspaceError(f"{folder}: exists and is not an empty folder; choose a new "
-                             f"path or remove it first")
+    require_creatable(folder)  # before the proof's work; again under the lock
     if probe is None:
         raise UsageError("adopt needs a labelled probe (--probe FILE) to prove that the "
                          "adopted model's outputs did not change")

@@ -43,6 +43,7 @@ from ..files.artifact import (
     refuse_adopted_pt,
     torch_bytes,
 )
+from ..files.commit import fsync_dir
 from ..files.compose import onnx_artifact
 from ..files.onnx_export import read_metadata
 from ..files.quantize import QUANTISATION, size_breakdown
@@ -285,8 +286,11 @@ def export_artifact(folder: str | Path, out: str | Path, task: str | None = None
                      "accept_drop": float(accept_drop) if int8 else None,
                      "tasks_report": rows, "size": size, "colonnade": __version__}
             record_export(net, entry, outputs)
+        # After the commit: the record never lacks an artifact that is in place (a crash
+        # between the two leaves the record naming one not yet moved there).
         os.replace(staged, out)
         staged = None
+        fsync_dir(out.parent)  # the rename itself durable, as a commit's is
     finally:
         if staged is not None:
             staged.unlink(missing_ok=True)

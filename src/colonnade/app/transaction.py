@@ -25,10 +25,16 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from ..errors import UsageError
-from ..evidence.record import Attribution, describe_entry, signature_required_from
+from ..evidence.record import (
+    Attribution,
+    describe_entry,
+    record_never_started,
+    signature_required_from,
+)
 from ..evidence.signing import Signer, load_signer
-from ..files.commit import read_pending
+from ..files.commit import clear_interrupted_creation, interrupted_creation, read_pending
 from ..files.lock import DEFAULT_WAIT, writer_lock
+from ..files.manifest import MANIFEST, read_manifest
 from ..files.staging import Swept
 from ..files.store import load, save
 from ..model.network import ProgressiveNet
@@ -178,12 +184,13 @@ def writing(folder: str | Path, verb: str, by: str | None = None, reason: str | 
 
 @dataclass
 class Recovery:
-    """What ``recover`` did: the interrupted writes it recorded (None: there was none),
-    and the staging folders of killed ``grow --nproc`` runs it swept (not recorded: they
-    were never part of the workspace)."""
+    """What ``recover`` did: the interrupted writes it found (None: there was none),
+    whether that went into the history, and the staging folders of killed
+    ``grow --nproc`` runs it swept (never recorded: they were not part of the workspace)."""
 
     found: str | None
     swept: Swept
+    recorded: bool = True
 
     def describe(self) -> str | None:
         """Everything it did in one clause, or None when there was nothing to do."""
@@ -191,10 +198,30 @@ class Recovery:
         return "; ".join(parts) or None
 
 
+CREATION_UNDONE = ("a 'new' or 'adopt' was interrupted before its commit point; what it "
+                   "left was removed and the folder holds no workspace: run it again")
+
+
 def recovery(folder: str | Path, by: str | None = None, reason: str | None = None,
              sign: str | Path | None = None) -> Recovery:
     """``colonnade recover WS``: finish or undo an interrupted write now, not at the next
-    one (recorded in the history), and remove staging folders left by killed runs."""
+    one (recorded in the history), and remove staging folders left by killed runs.
+
+    A folder that an interrupted ``new`` or ``adopt`` left (no manifest yet) is emptied,
+    with nothing to record it in. A workspace whose record was never started is refused
+    in one sentence: ``record start`` chains it and records what it finds.
+    """
+    folder = Path(folder)
+    if folder.is_dir() and not os.path.lexists(folder / MANIFEST):
+        with writer_lock(folder, "recover", wait_seconds(), tell_waiting) as swept:
+            leftovers = interrupted_creation(folder)
+            if leftovers:
+                clear_interrupted_creation(folder, leftovers)
+                return Recovery(CREATION_UNDONE, swept, recorded=False)
+    elif (folder / MANIFEST).is_file() and record_never_started(read_manifest(folder)):
+        raise UsageError(f"{folder}: its record was never started, so nothing can be "
+                         f"recorded in it; run 'colonnade record start {folder} --reason "
+                         f"TEXT', which also records any interrupted write it finds")
     with writing(folder, "recover", by, reason, sign) as tx:
         if not tx.interrupted_write:
             tx.discard()

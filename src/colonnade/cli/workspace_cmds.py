@@ -158,7 +158,8 @@ def _recover(args: argparse.Namespace) -> int:
     done = recovery(args.workspace, **record_kwargs(args))
     swept = done.swept.describe()
     if done.found is not None:
-        print(f"{args.workspace}: recovered ({done.found}); recorded in the history")
+        print(f"{args.workspace}: recovered ({done.found})"
+              f"{'; recorded in the history' if done.recorded else ''}")
     elif swept is None:
         print(f"{args.workspace}: no interrupted write to recover; nothing changed")
     else:

@@ -39,7 +39,7 @@ __all__ = ["RECORD_FORMAT", "Attribution", "Finding", "RecordEntry", "canonical"
            "value_digest", "entry_digest", "state_digests", "extend", "verify_chain",
            "describe_entry", "typed_history", "default_author", "signature_required_from",
            "unchain", "chain_found", "RECORD_STARTED", "signature_digest", "PREV_SIGNATURE",
-           "HEAD_SIGNATURE"]
+           "HEAD_SIGNATURE", "record_never_started"]
 
 RECORD_FORMAT = "colonnade-record-1"
 RECORD_STARTED = "record_started"  # the step that chains a history written before the record
@@ -353,6 +353,14 @@ def _chain_findings(history: list[Any]) -> list[Finding]:
     return out
 
 
+def record_never_started(manifest: Mapping[str, Any]) -> bool:
+    """Whether the manifest is of a workspace made before the record was chained: no
+    ``record`` section and no history entry with a digest (``record start`` chains it)."""
+    history = manifest.get("history")
+    return manifest.get("record") is None and not (isinstance(history, list) and any(
+        isinstance(e, Mapping) and "entry_sha256" in e for e in history))
+
+
 def verify_chain(manifest: Mapping[str, Any]) -> list[Finding]:
     """Every finding about the chain and the state bound to its head, first one first."""
     history = manifest.get("history")
@@ -360,8 +368,7 @@ def verify_chain(manifest: Mapping[str, Any]) -> list[Finding]:
         return [Finding("the manifest has no history, so nothing binds its content; restore "
                         "the workspace from a copy", section="history")]
     record = manifest.get("record")
-    if record is None and not any(isinstance(e, Mapping) and "entry_sha256" in e
-                                  for e in history):
+    if record_never_started(manifest):
         return [Finding("the workspace was made before colonnade chained its record (no "
                         "history entry carries a digest); start its record with 'colonnade "
                         "record start WS --reason TEXT'", section="record")]

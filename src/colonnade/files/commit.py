@@ -48,7 +48,8 @@ from .lock import READER_LOCK, WRITER_LOCK, try_collect_lock
 from .manifest import MANIFEST
 
 __all__ = ["DATA", "PENDING", "write_durably", "fsync_dir", "sha_hex", "stored_path",
-           "legacy_path", "write_generation", "read_pending", "pending_recovery"]
+           "legacy_path", "write_generation", "read_pending", "pending_recovery",
+           "interrupted_creation", "clear_interrupted_creation"]
 
 DATA = "data"
 PENDING = ".pending"
@@ -307,6 +308,54 @@ def _collect(folder: Path, keep: set[str], retired: set[str]) -> None:
         fsync_dir(data_dir)
         os.unlink(folder / PENDING)
         fsync_dir(folder)
+
+
+def interrupted_creation(folder: Path) -> list[Path] | None:
+    """What a creation (``new``, ``adopt``) killed before its commit point left in
+    ``folder``, in the order to remove it; None when the folder holds anything else.
+
+    Before ``.pending`` is in place only this module's temporary files can be there; after
+    it, a note saying it commits the first generation (no ``from_head``), ``data/`` with
+    plain files, and temporary files. The lock files are not listed: they stay. A folder
+    without a manifest whose note says otherwise (a workspace whose manifest was deleted)
+    is not a creation's leftovers, and nothing in it is touched.
+    """
+    if os.path.lexists(folder / MANIFEST):
+        return None
+    note = read_pending(folder)
+    creation = note is not None and not note.get("unreadable") and note.get("from_head") is None
+    files: list[Path] = []
+    folders: list[Path] = []
+    for entry in os.scandir(folder):
+        name = entry.name
+        if name in (WRITER_LOCK, READER_LOCK):
+            continue
+        if entry.is_symlink():
+            return None
+        if name.startswith(_TMP_PREFIX) and entry.is_file(follow_symlinks=False):
+            files.append(Path(entry.path))
+        elif name == PENDING and creation and entry.is_file(follow_symlinks=False):
+            continue  # removed last
+        elif name == DATA and creation and entry.is_dir(follow_symlinks=False):
+            inside = list(os.scandir(entry.path))
+            if not all(e.is_file(follow_symlinks=False) for e in inside):
+                return None
+            files += [Path(e.path) for e in inside]
+            folders.append(Path(entry.path))
+        else:
+            return None
+    return files + folders + ([folder / PENDING] if creation else [])
+
+
+def clear_interrupted_creation(folder: Path, leftovers: list[Path]) -> None:
+    """Remove what ``interrupted_creation`` listed (under the writer lock), ``.pending``
+    last, so a crash here leaves leftovers that are still recognised as such."""
+    for path in leftovers:
+        if path.is_dir() and not path.is_symlink():
+            os.rmdir(path)
+        else:
+            path.unlink(missing_ok=True)
+    fsync_dir(folder)
 
 
 def confined_stored(folder: Path, name: str, entry: Any) -> tuple[Path, Path]:

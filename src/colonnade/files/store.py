@@ -33,8 +33,10 @@ from ..model.network import ProgressiveNet
 from ..model.schema import Spec
 from ..model.spec import load_spec, parse_spec
 from .commit import (
+    clear_interrupted_creation,
     confined_stored,
     fsync_dir,
+    interrupted_creation,
     pending_recovery,
     sha_hex,
     write_durably,
@@ -44,8 +46,8 @@ from .lock import READER_LOCK, WRITER_LOCK, reader_lock, writer_lock
 from .manifest import FORMAT, MANIFEST, RESERVED, VERSION, WEIGHTS, manifest_text, read_manifest
 from .summary import network_summary
 
-__all__ = ["create", "save", "load", "atomic_write", "read_manifest", "listed_files",
-           "listed_path", "LOADED_HEAD", "UNVERIFIED", "MANIFEST", "WEIGHTS"]
+__all__ = ["create", "require_creatable", "save", "load", "atomic_write", "read_manifest",
+           "listed_files", "listed_path", "LOADED_HEAD", "UNVERIFIED", "MANIFEST", "WEIGHTS"]
 
 # The record head a network was loaded at; ``save`` refuses when the workspace moved on.
 LOADED_HEAD = "_loaded_head"
@@ -212,7 +214,7 @@ def create(spec_or_path: Any, folder: str | Path, net: ProgressiveNet | None = N
     else:
         spec = load_spec(spec_or_path)
     folder = Path(folder)
-    _require_empty(folder)
+    require_creatable(folder)
     if net is None:
         net = ProgressiveNet(spec)
         net.meta["history"].append({"step": "created", "time": now()})
@@ -227,7 +229,7 @@ def create(spec_or_path: Any, folder: str | Path, net: ProgressiveNet | None = N
     # of replacing it while both say they created it.
     with writer_lock(folder, who.verb or "new"):
         try:
-            _require_empty(folder)
+            require_creatable(folder, clear=True)
             save(net, folder, who)
         except BaseException:
             if made and not (folder / MANIFEST).exists():
@@ -236,13 +238,24 @@ def create(spec_or_path: Any, folder: str | Path, net: ProgressiveNet | None = N
     return net
 
 
-def _require_empty(folder: Path) -> None:
-    """Refuse a path that holds anything but an empty folder (or the lock files a create
-    that failed there left behind)."""
-    if folder.exists() and (not folder.is_dir() or any(
-            p.name not in (WRITER_LOCK, READER_LOCK) for p in folder.iterdir())):
-        raise WorkspaceError(f"{folder}: exists and is not an empty folder; choose a new "
+def require_creatable(folder: str | Path, clear: bool = False) -> None:
+    """Refuse a path that holds anything but an empty folder, the lock files a create
+    that failed there left, or what a create killed before its commit point left
+    (``commit.interrupted_creation``), which ``clear`` (under the writer lock) removes."""
+    folder = Path(folder)
+    if not folder.exists() and not folder.is_symlink():
+        return
+    refused = WorkspaceError(f"{folder}: exists and is not an empty folder; choose a new "
                              f"path or remove it first")
+    if not folder.is_dir():
+        raise refused
+    if all(p.name in (WRITER_LOCK, READER_LOCK) for p in folder.iterdir()):
+        return
+    leftovers = interrupted_creation(folder)
+    if leftovers is None:
+        raise refused
+    if clear:
+        clear_interrupted_creation(folder, leftovers)
 
 
 def _check_listed_sizes(folder: Path, files: dict[str, Any]) -> None:
