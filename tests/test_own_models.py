@@ -291,3 +291,16 @@ def test_a_tap_whose_output_is_a_tuple_is_named_as_such(tmp_path):
         colonnade.adopt(Recurrent(), SIGNAL, "t", ["gru"], spec)
     net = colonnade.adopt(Recurrent(), SIGNAL, "t", ["fc"], spec)  # a tensor tap is fine
     assert net.adopted.record.tap_shapes == [[3]]
+
+
+def test_an_old_operator_set_is_warned_about_when_adopted_not_first_at_export(tmp_path,
+                                                                             capsys):
+    for opset, warned in ((13, True), (18, False)):
+        folder = tmp_path / str(opset)
+        folder.mkdir()
+        model = _onnx(folder, TwoHeads(), (12,), opset, "m.onnx", outputs=("a", "b"))
+        assert onnx.load(model).opset_import[0].version == opset  # onnx's own reading
+        code, _ = _adopt(folder, model, "/body/Gemm_output_0", (12,))
+        err = capsys.readouterr().err
+        # before: silent here; the refusal came at export, after growing and sealing
+        assert code == 0 and ("uses ONNX operator set 13" in err) == warned, err

@@ -8,6 +8,7 @@ task, and only then create the workspace. Any refusal leaves nothing on disk.
 
 from __future__ import annotations
 
+import warnings
 from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
@@ -33,6 +34,9 @@ __all__ = ["adopt", "adopt_workspace", "MODEL_FORMATS"]
 
 MODEL_FORMATS = {".pt2": "a torch.export program", ".onnx": "an ONNX model"}
 ONNX_MAX_BYTES = 2**31 - 1  # protobuf's limit on one serialized message (an ONNX file)
+# The oldest operator set of an adopted ONNX model whose artifacts the tests export (the
+# new parts are converted down from 18; README "Shipping tasks").
+CONVERTED_FROM = 17
 
 
 def _spec(spec: Any) -> Spec:
@@ -117,6 +121,13 @@ def adopt(model: Any, input_shape: Sequence[int] | None = None, task: str = "ado
                              "runtime_version": record.runtime_version,
                              "sha256": record.sha256, "taps": list(record.taps),
                              "classes": record.classes}
+    opset = getattr(column._runner[0], "opset", None)
+    if opset is not None and opset < CONVERTED_FROM:
+        warnings.warn(f"{model}: uses ONNX operator set {opset}; an .onnx export of tasks "
+                      f"that read it converts the new parts down to {opset} with onnx's "
+                      f"version converter, which is tested from {CONVERTED_FROM} and may "
+                      f"refuse; to be sure they ship, re-export the model at operator set 18 "
+                      f"or later and adopt that file before growing on it", stacklevel=2)
     outputs = getattr(column._runner[0], "outputs", None)
     if outputs is not None:  # an ONNX graph: its first output is the task's logits
         entry["outputs"] = list(outputs)

@@ -137,6 +137,8 @@ class OnnxTaps:
         self.input_name = inputs[0].name
         self.output_name = model.graph.output[0].name
         self.outputs = [o.name for o in model.graph.output]
+        self.opset = max((o.version for o in model.opset_import if o.domain in ("", "ai.onnx")),
+                         default=None)
         _check_float(onnx, inputs[0], f"{path}: the ONNX model's input {self.input_name!r}",
                      "export it with a float32 input")
         _check_pinnable(inputs[0], input_shape, path)
