@@ -248,3 +248,61 @@ def test_new_clears_only_what_an_interrupted_creation_left(crash_base, tmp_path)
     new_workspace(spec, made)  # now exactly a creation's leftovers: cleared, then created
     assert not (made / "data" / "weights.part").exists()
     assert not (made / ".pending").exists()
+
+
+# ----------------------------------------------------------------------------- key new
+def _key_new_killed_at(step: int | None, name: Path) -> int:
+    """``new_key`` in a forked child that dies by ``os._exit`` at file-system step
+    ``step`` (crash_driver's steps); its exit code (77: killed there)."""
+    from crash_driver import _counting
+
+    from colonnade.app.record import new_key
+
+    pid = os.fork()
+    if pid == 0:
+        counter: list[int] = [0]
+        real, wrapped = _counting(step, counter, [])
+        for call, fn in wrapped.items():
+            setattr(os, call, fn)
+        try:
+            new_key(name)
+            code = 0 if step is None or counter[0] < step else 78
+        except BaseException:  # noqa: BLE001 -- any failure is the parent's finding
+            code = 1
+        for call, fn in real.items():
+            setattr(os, call, fn)
+        os._exit(code if step is not None else min(counter[0], 70))
+    _, status = os.waitpid(pid, 0)
+    return os.waitstatus_to_exitcode(status)
+
+
+def test_key_new_killed_at_any_step_leaves_no_half_key(tmp_path):
+    """A killed ``key new`` leaves both files whole and matching, the public key alone,
+    or nothing; never a partial or empty private key that a retry would then refuse to
+    replace. Checked with the cryptography package's own PEM loaders."""
+    from cryptography.hazmat.primitives import serialization
+
+    from colonnade.app.record import new_key
+
+    (tmp_path / "count").mkdir()
+    steps = _key_new_killed_at(None, tmp_path / "count" / "signer")  # its step count
+    assert steps >= 8, steps  # two temporary files written, fsynced, linked, removed
+    for step in range(1, steps + 1):
+        folder = tmp_path / f"at-{step}"
+        folder.mkdir()
+        assert _key_new_killed_at(step, folder / "signer") == 77, step
+        names = {p.name for p in folder.iterdir() if not p.name.endswith(".tmp")}
+        assert names in (set(), {"signer.pub"}, {"signer.pub", "signer.key"}), (step, names)
+        if "signer.key" in names:
+            private = serialization.load_pem_private_key(
+                (folder / "signer.key").read_bytes(), None)
+            public = serialization.load_pem_public_key((folder / "signer.pub").read_bytes())
+            assert private.public_key().public_bytes(
+                serialization.Encoding.Raw, serialization.PublicFormat.Raw) == \
+                public.public_bytes(serialization.Encoding.Raw, serialization.PublicFormat.Raw)
+            assert (folder / "signer.key").stat().st_mode & 0o077 == 0
+        elif "signer.pub" in names:
+            serialization.load_pem_public_key((folder / "signer.pub").read_bytes())
+        if not names:  # nothing in place: the retry works, and clears the killed one's files
+            new_key(folder / "signer")
+            assert {p.name for p in folder.iterdir()} == {"signer.key", "signer.pub"}

@@ -9,7 +9,7 @@ made before the record existed.
 
 from __future__ import annotations
 
-import os
+import sys
 from collections.abc import Iterable
 from pathlib import Path
 from typing import Any
@@ -20,6 +20,7 @@ from ..evidence.integrity import RecordReport, verify_manifest
 from ..evidence.provenance import match_data, sample_fingerprint
 from ..evidence.record import Finding, RecordEntry, chain_found, typed_history, verify_chain
 from ..evidence.signing import key_id, load_signer, load_trusted, new_key_pems
+from ..files.commit import write_new_durably
 from ..files.limits import MAX_MANIFEST_BYTES, read_bounded, sha256_file
 from ..files.lock import reader_lock, writer_lock
 from ..files.manifest import MANIFEST, manifest_text, read_manifest
@@ -163,15 +164,25 @@ def new_key(name: str | Path, passphrase: str | None = None) -> dict[str, Any]:
         if p.exists():
             raise UsageError(f"{p}: exists already; choose another name (a key that signed "
                              f"records must not be replaced)")
+    for stale in (*base.parent.glob(f".{private_path.name}.*.tmp"),
+                  *base.parent.glob(f".{public_path.name}.*.tmp")):
+        if stale.is_file() and not stale.is_symlink():  # left by a killed 'key new'
+            stale.unlink()
     private_pem, public_pem = new_key_pems(passphrase.encode("utf-8") if passphrase else None)
-    fd = os.open(private_path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+    # Each file appears whole or not at all (``write_new_durably``), the public one first:
+    # a crash between the two leaves a public key alone, never a secret without its pair
+    # that a retry would refuse to replace.
     try:
-        with os.fdopen(fd, "wb") as f:
-            f.write(private_pem)
-        with open(public_path, "xb") as f:
-            f.write(public_pem)
+        write_new_durably(public_path, public_pem, 0o644)
+    except FileExistsError:
+        raise UsageError(f"{public_path}: exists already; choose another name") from None
+    try:
+        write_new_durably(private_path, private_pem, 0o600)
     except BaseException:
-        private_path.unlink(missing_ok=True)
+        public_path.unlink(missing_ok=True)
+        if isinstance(sys.exc_info()[1], FileExistsError):
+            raise UsageError(f"{private_path}: exists already; choose another name (a key "
+                             f"that signed records must not be replaced)") from None
         raise
     signer = load_signer(private_path, passphrase.encode("utf-8") if passphrase else None)
     return {"key": str(private_path), "public": str(public_path),

@@ -49,7 +49,7 @@ from .manifest import MANIFEST
 
 __all__ = ["DATA", "PENDING", "write_durably", "fsync_dir", "sha_hex", "stored_path",
            "legacy_path", "write_generation", "read_pending", "pending_recovery",
-           "interrupted_creation", "clear_interrupted_creation"]
+           "interrupted_creation", "clear_interrupted_creation", "write_new_durably"]
 
 DATA = "data"
 PENDING = ".pending"
@@ -115,6 +115,41 @@ def write_durably(folder: Path, final: str, data: bytes) -> None:
     except BaseException:
         tmp.unlink(missing_ok=True)
         raise
+
+
+def write_new_durably(final: Path, data: bytes, mode: int = 0o666) -> None:
+    """Write a file that must not exist yet, so that a crash leaves it whole or absent.
+
+    Written to a temporary file beside it (``.<name>.<pid>.tmp``), fsynced, then hard
+    linked to ``final``: link(2) never replaces a file, so one that appeared meanwhile is
+    refused (FileExistsError), unlike a rename. Where the file system has no hard links,
+    the temporary file is renamed instead after checking that ``final`` is absent.
+    """
+    tmp = final.with_name(f".{final.name}.{os.getpid()}.tmp")
+    if os.path.lexists(tmp):  # left by a crashed process that had the same pid
+        os.unlink(tmp)
+    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_NOFOLLOW | os.O_CLOEXEC,
+                 mode)
+    try:
+        try:
+            view = memoryview(data)
+            while view:
+                view = view[os.write(fd, view):]
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+        try:
+            os.link(tmp, final)
+        except FileExistsError:
+            raise
+        except OSError:  # no hard links here (FAT, some network file systems)
+            if os.path.lexists(final):
+                raise FileExistsError(final) from None
+            os.rename(tmp, final)
+    finally:
+        if os.path.lexists(tmp):
+            os.unlink(tmp)
+    fsync_dir(final.parent)
 
 
 def read_pending(folder: Path) -> dict[str, Any] | None:
