@@ -16,7 +16,7 @@ import yaml
 from conftest import permuted_digit_tasks, snapshot
 
 import colonnade
-from colonnade.app.distributed_grow import GrowRequest, grow_distributed
+from colonnade.app.distributed_grow import GrowRequest, grow_distributed, rank_threads
 from colonnade.app.evidence import check_workspace, seal_workspace
 from colonnade.app.record import history, new_key, verify_record
 from colonnade.app.workspace import grow_workspace
@@ -109,18 +109,36 @@ def test_cli_reports_a_killed_rank_in_one_sentence(sealed_workspace, tmp_path, m
     assert snapshot(work) == before
 
 
+def test_a_rank_uses_the_threads_the_environment_names(monkeypatch):
+    # References: the OMP_NUM_THREADS convention torch and torchrun follow, os.cpu_count().
+    monkeypatch.setenv("OMP_NUM_THREADS", "3")
+    assert rank_threads(2) == 3
+    for unusable in ("", "0", "two", "-1"):
+        monkeypatch.setenv("OMP_NUM_THREADS", unusable)
+        assert rank_threads(2) == max(1, (os.cpu_count() or 1) // 2)
+    monkeypatch.delenv("OMP_NUM_THREADS")
+    assert rank_threads(2) == max(1, (os.cpu_count() or 1) // 2)
+    assert rank_threads(10 ** 6) == 1
+
+
 def test_bad_nproc(sealed_workspace):
     _, ws, _ = sealed_workspace
     with pytest.raises(colonnade.UsageError, match="at least 2"):
         grow_distributed(GrowRequest(str(ws), "perm1", "x.npz"), 1)
 
 
-def test_torchrun_launch_gives_the_same_model_as_nproc(sealed_workspace, tmp_path):
+def test_torchrun_launch_gives_the_same_model_as_nproc(sealed_workspace, tmp_path,
+                                                     monkeypatch):
     # torch's own launcher (torchrun --standalone), as the README shows for several
-    # machines; rank 0 writes. Same shards and seeds as --nproc 2, so the same weights.
+    # machines; rank 0 writes. Same shards, seeds and thread count as --nproc 2, so the
+    # same weights. The thread count is pinned for both launchers (torchrun gives its
+    # workers OMP_NUM_THREADS=1 unless the caller set it, --nproc used this machine's
+    # cores per rank): at 2, the weights differed on this 2-core machine before --nproc
+    # honoured the variable, as they did for a caller who had exported it.
     import subprocess
     import sys
 
+    monkeypatch.setenv("OMP_NUM_THREADS", "2")
     tmp, ws, _ = sealed_workspace
     a, b = _copy(ws, tmp_path / "a"), _copy(ws, tmp_path / "b")
     grow_distributed(GrowRequest(str(a), "perm1", str(tmp / "perm1.npz")), 2, progress=False)

@@ -55,7 +55,7 @@ from ..training.growth import grow
 from .transaction import tell_waiting, wait_seconds
 
 __all__ = ["DataOptions", "growth_data", "GrowRequest", "grow_distributed", "run_rank",
-           "run_torchrun_rank"]
+           "run_torchrun_rank", "rank_threads"]
 
 
 @dataclass
@@ -179,11 +179,22 @@ def _die_with_parent(parent: int) -> None:
         os._exit(1)
 
 
+def rank_threads(world: int) -> int:
+    """Intra-op threads of one local rank: ``OMP_NUM_THREADS`` when it is set to a whole
+    number (torch reads it at start-up, and torchrun sets it for its workers), else this
+    machine's cores shared among the ranks. Different thread counts may round differently
+    (DESIGN invariant 8), so the variable lets an --nproc run match a torchrun launch."""
+    text = os.environ.get("OMP_NUM_THREADS", "").strip()
+    if text.isdigit() and int(text) > 0:
+        return int(text)
+    return max(1, (os.cpu_count() or 1) // world)
+
+
 def _spawned(rank: int, world: int, port: int, request: GrowRequest, staging: str,
              progress: bool, parent: int) -> None:
     _die_with_parent(parent)
     os.environ.update(MASTER_ADDR="127.0.0.1", MASTER_PORT=str(port))
-    torch.set_num_threads(max(1, (os.cpu_count() or 1) // world))
+    torch.set_num_threads(rank_threads(world))
     run_rank(rank, world, request, staging, progress)
 
 
