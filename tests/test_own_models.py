@@ -304,3 +304,35 @@ def test_an_old_operator_set_is_warned_about_when_adopted_not_first_at_export(tm
         err = capsys.readouterr().err
         # before: silent here; the refusal came at export, after growing and sealing
         assert code == 0 and ("uses ONNX operator set 13" in err) == warned, err
+
+
+def test_models_exported_in_training_mode_are_refused(tmp_path, capsys):
+    batch = {0: torch.export.Dim("batch")}
+    for name, layer in (("bn", nn.BatchNorm1d(16)), ("drop", nn.Dropout(0.5))):
+        model = nn.Sequential(nn.Linear(12, 16), layer, nn.ReLU(), nn.Linear(16, 3))
+        folder = tmp_path / name
+        folder.mkdir()
+        torch.export.save(torch.export.export(model.train(), (torch.rand(4, 12),),
+                                              dynamic_shapes=(batch,)), folder / "m.pt2")
+        # before: adopted and proven (a batch's own statistics are the same twice), so a
+        # row's logits depended on its batch; dropout was only caught as non-determinism
+        err = _refused(folder, capsys, folder / "m.pt2", "0")
+        assert "exported in training mode" in err and "model.eval()" in err, err
+        torch.export.save(torch.export.export(model.eval(), (torch.rand(4, 12),),
+                                              dynamic_shapes=(batch,)), folder / "m.pt2")
+        assert _adopt(folder, folder / "m.pt2", "0", (12,))[0] == 0  # the same, in eval mode
+    normalising = nn.Sequential(nn.Linear(12, 16), nn.BatchNorm1d(16), nn.Linear(16, 3))
+    buf = io.BytesIO()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        torch.onnx.export(normalising.train(), (torch.rand(4, 12),), buf, dynamo=False,
+                          training=torch.onnx.TrainingMode.TRAINING, do_constant_folding=False,
+                          input_names=["x"], dynamic_axes={"x": {0: "n"}}, opset_version=18)
+    x = np.random.default_rng(0).random((8, 12), dtype=np.float32)
+    session = _session(buf.getvalue())  # onnxruntime: a row's output depends on its batch
+    assert not np.allclose(session.run(None, {"x": x})[0][:4], session.run(None, {"x": x[:4]})[0])
+    (tmp_path / "onnx").mkdir()
+    (tmp_path / "onnx" / "m.onnx").write_bytes(buf.getvalue())
+    # before: adopted and proven on one batching
+    err = _refused(tmp_path / "onnx", capsys, tmp_path / "onnx" / "m.onnx", "/0/Gemm_output_0")
+    assert "exported in training mode (BatchNormalization" in err

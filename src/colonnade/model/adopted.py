@@ -253,10 +253,32 @@ def _exported_input_shape(ep: Any, path: str) -> Shape:
     return tuple(int(d) for d in dims)
 
 
+# ATen operators with their ``training``/``train`` flag's position: set, the program
+# normalises by each batch's own statistics (and updates its buffers) or drops at random.
+_TRAINING_FLAGS = {"batch_norm": 5, "dropout": 2, "feature_dropout": 2, "alpha_dropout": 2,
+                   "feature_alpha_dropout": 2, "native_dropout": 2}
+
+
+def _check_eval_mode(ep: Any, path: str) -> None:
+    """A program exported from a model in training mode is refused: a sample's output
+    would depend on the other samples of its batch, or on chance, and its batch-norm
+    buffers would change at every call; torch.export keeps the mode it was given."""
+    for node in ep.graph.nodes:
+        op = getattr(node.target, "__name__", "").split(".")[0]
+        at = _TRAINING_FLAGS.get(op)
+        if node.op == "call_function" and at is not None and len(node.args) > at \
+                and node.args[at] is True:
+            raise DataError(f"{path}: the program was exported in training mode ({op} with "
+                            f"training on, at node {node.name}), so a sample's output would "
+                            f"depend on its batch or on chance; export it again after "
+                            f"model.eval()")
+
+
 def adopt_exported(data: bytes, input_shape: Shape, taps: list[str], path: str = "model.pt2",
                    ) -> tuple[AdoptedColumn, Callable[[torch.Tensor], torch.Tensor]]:
     """A column running a ``torch.export`` program read without pickle (model.exported)."""
     ep = load_exported_program(data, path)
+    _check_eval_mode(ep, path)
     shape = _exported_input_shape(ep, path)
     if shape != tuple(input_shape):
         raise SpecError(f"the spec's input {list(input_shape)} differs from the program's "

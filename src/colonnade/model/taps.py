@@ -148,6 +148,7 @@ class OnnxTaps:
                 raise UsageError(f"the ONNX model has no value named {tap!r}; the nearest "
                                  f"names are: {nearest_names(tap, values)}")
         _check_tap_types(onnx, model, taps)
+        _check_inference_mode(model, path)
         existing = {o.name for o in model.graph.output}
         for tap in taps:  # extra outputs only: no node is added, removed or changed
             if tap not in existing:
@@ -223,6 +224,21 @@ def _check_tap_types(onnx: Any, model: Any, taps: list[str]) -> None:
         if tap in known:
             _check_float(onnx, known[tap], f"tap {tap!r}", "choose a value that holds "
                          "features (a layer's output)")
+
+
+def _check_inference_mode(model: Any, path: str) -> None:
+    """A graph exported in training mode is refused, as a .pt2 is (model.adopted): a
+    BatchNormalization with training_mode=1 normalises each batch by its own statistics
+    in onnxruntime (measured: a row's output changed with its batch), so a sample's
+    output would depend on the others. (A Dropout in training mode is not refused:
+    onnxruntime's graph optimisation removes it, and the output was the eval model's.)"""
+    for node in model.graph.node:
+        if node.op_type == "BatchNormalization" and any(
+                a.name == "training_mode" and a.i for a in node.attribute):
+            raise DataError(f"{path}: the graph was exported in training mode "
+                            f"(BatchNormalization {node.name or node.output[0]!r} with "
+                            f"training_mode=1), so a sample's output would depend on its "
+                            f"batch; export it again after model.eval()")
 
 
 def _check_pinnable(value: Any, input_shape: Shape, path: str) -> None:
