@@ -8,7 +8,8 @@ reproducible as its input pipeline:
 * image -> ``[C, H, W]``: converted to ``L`` (C=1), ``RGB`` (C=3) or ``RGBA`` (C=4) by
   Pillow's ``convert``; resized to the spec's ``W x H`` with bilinear filtering when its
   size differs; values divided by 255 (by 65535 for 16-bit greyscale, which fills every
-  colour channel of a 3- or 4-channel spec, alpha opaque), so in [0, 1].
+  colour channel of a 3- or 4-channel spec, alpha opaque), so in [0, 1]. Pixels are
+  taken as stored: an EXIF orientation tag is not applied (nothing is rotated).
 * waveform -> ``[channels, length]`` (or ``[length]`` for a mono spec): samples as
   float32 in [-1, 1] (soundfile's scaling of integer PCM); longer files are cut to their
   first ``length`` frames, shorter ones padded with zeros at the end; the channel count
