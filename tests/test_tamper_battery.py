@@ -40,10 +40,10 @@ from colonnade.app.export import export_artifact
 from colonnade.app.record import new_key, verify_record
 from colonnade.app.workspace import grow_workspace
 from colonnade.cli import main
-from colonnade.errors import WorkspaceError
+from colonnade.errors import UsageError, WorkspaceError
 from colonnade.evidence import record
 from colonnade.evidence.integrity import verify_manifest
-from colonnade.evidence.signing import Signer, load_trusted
+from colonnade.evidence.signing import Signer, check_signature, load_trusted, signature_report
 from colonnade.files.manifest import manifest_text
 
 SHAPE = (3, 16, 16)
@@ -456,3 +456,121 @@ def test_readers_refuse_an_edited_workspace_in_one_sentence(built, tmp_path, cap
     assert "record does not verify" in err and err.count("\n") == 1 and "Traceback" not in err
     assert "records/pump" in err
     assert not (tmp_path / "rep").exists() and not (tmp_path / "p.csv").exists()
+
+
+# ----------------------------------------------------------------------------- careful forgers
+# Edits that recompute the one digest a careless edit would break, each caught by exactly
+# one check of the record (found by hand mutations of it: each case fails when that check
+# is removed).
+def _redigest(entry) -> None:
+    entry["entry_sha256"] = record.entry_digest(entry)
+
+
+def _unsigned_middle_entry_redigested(m) -> None:
+    entry = m["history"][5]  # the export: the one step signed by nobody
+    assert "signature" not in entry
+    entry["bytes"] += 1
+    _redigest(entry)
+
+
+def _head_renumbered(m) -> None:
+    head = m["history"][-1]
+    head.pop("signature")
+    head["seq"] = 9
+    _redigest(head)
+    m["record"].update(head=head["entry_sha256"], head_signature_sha256=None)
+
+
+def _section_and_record_state_edited(m) -> None:
+    m["records"]["pump"]["val_accuracy"] = 0.99
+    m["record"]["state"] = record.state_digests(m)
+
+
+FORGER_EDITS = {
+    "an unsigned entry edited and its digest recomputed": (_unsigned_middle_entry_redigested,
+                                                           "history entry 7 "),
+    "the head renumbered, its digest and the record's head recomputed": (_head_renumbered,
+                                                                          "history entry 7 "),
+    "a section edited and the record's state recomputed": (_section_and_record_state_edited,
+                                                           "record's state"),
+    "a key added to the record section": (lambda m: m["record"].__setitem__("note", "ok"),
+                                          "record section"),
+    "a section added": (lambda m: m.__setitem__("approvals", {"pump": "yes"}),
+                        "manifest section approvals"),
+    "a file listed by hand": (lambda m: m["files"].__setitem__(
+        "extra.npz", dict(m["files"]["seals.safetensors"])), "files/extra.npz"),
+    "a field added to an entry": (lambda m: m["history"][2].__setitem__("approved", True),
+                                  "history entry 3 "),
+}
+
+
+@pytest.mark.parametrize("case", list(FORGER_EDITS))
+def test_careful_forgers_without_a_key_are_caught_without_trust(built, case):
+    edit, named = FORGER_EDITS[case]
+    manifest = copy.deepcopy(built["manifest"])
+    edit(manifest)
+    report = verify_manifest(manifest, b"", "", _digests(built).get, None)
+    assert not report.passed and named in report.first, report.first
+
+
+def test_a_broken_chain_is_never_extended(built):
+    """The store's last line: ``extend`` refuses to put a new head on a broken chain (a
+    commit would otherwise bless the edit with a fresh digest and signature)."""
+    manifest = copy.deepcopy(built["manifest"])
+    manifest["history"][2]["task"] = "pump"
+    manifest["history"].append({"step": "usage_scored", "time": "2026-01-01T00:00:00+00:00"})
+    with pytest.raises(WorkspaceError, match="refusing to save: the record does not verify "
+                                             r"\(history entry 3"):
+        record.extend(manifest, record.Attribution(verb="usage"))
+
+
+def test_a_signature_block_verifies_only_as_written(built):
+    """``check_signature`` itself, against the ``cryptography`` package's Ed25519: a block
+    whose key id is not its key's, or that carries a field more, is refused even where
+    the record's binding would catch the edit as well."""
+    signer = _mallory(built)
+    digest = built["manifest"]["history"][0]["entry_sha256"]
+    block = signer.sign(digest)
+    public = serialization.load_pem_public_key(Path(built["mallory"]["public"]).read_bytes())
+    public.verify(base64.b64decode(block["value"]),
+                  b"colonnade record signature\n" + digest.encode())  # the reference
+    assert check_signature(block, digest) == (True, signer.key_id)
+    assert check_signature(block, "0" * 64) == (False, signer.key_id)
+    assert check_signature({**block, "key": built["alice"]["key_id"]}, digest)[0] is False
+    assert check_signature({**block, "note": "x"}, digest)[0] is False
+    assert check_signature({**block, "algorithm": "rsa"}, digest)[0] is False
+
+
+def test_the_step_right_after_a_require_signed_seal_must_be_signed(built):
+    """``seal --require-signed`` binds every later step, the very next one included."""
+    history = copy.deepcopy(built["manifest"]["history"])
+    history[4]["require_signed"] = True  # the pump's seal; entry 6, the export, is unsigned
+    _, findings, _ = signature_report(history, None)
+    assert findings and findings[0].entry == 6, findings
+    assert "history entry 6 (artifact_exported) is unsigned, but history entry 5 " \
+           "(task_sealed pump v1) requires every later step to be signed" in findings[0].message
+    # signed, but by a key the reader does not trust, while the head is alice's
+    _sign_with_mallory(built, {"history": history}, 5)
+    _, findings, _ = signature_report(history, [load_trusted(built["alice"]["public"])])
+    assert any(f.entry == 6 and f"is signed by key {built['mallory']['key_id']}, which is "
+               f"not trusted, but history entry 5" in f.message for f in findings), findings
+
+
+def test_an_export_can_be_signed_where_every_step_must_be(built, tmp_path, capsys):
+    """The export's history entry is attributed and signed like every other step; before,
+    ``export`` took no key, so a workspace sealed with --require-signed could not export."""
+    ws = _copy(built, tmp_path)
+    seal_workspace(ws, "pump", str(built["root"] / "pump_probe.npz"), reason="lock it down",
+                   require_signed=True, accept_low_accuracy=True, sign=built["alice"]["key"])
+    out = tmp_path / "pump.onnx"
+    with pytest.raises(UsageError, match="requires every later step to be signed"):
+        export_artifact(ws, out, task="pump")
+    assert not out.exists()
+    assert main(["export", str(ws), "--task", "pump", "-o", str(out), "--by", "Alice",
+                 "--sign", built["alice"]["key"]]) == 0
+    capsys.readouterr()
+    entry = yaml.safe_load((ws / "manifest.yaml").read_text())["history"][-1]
+    assert entry["step"] == "artifact_exported" and entry["by"] == "Alice"
+    assert entry["signature"]["key"] == built["alice"]["key_id"]
+    code, text = _check(ws, capsys, "--trust", built["alice"]["public"])
+    assert code == 0, text

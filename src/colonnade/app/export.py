@@ -234,8 +234,14 @@ def _build(net: ProgressiveNet, names: list[str], kind: str, int8: bool,
 def export_artifact(folder: str | Path, out: str | Path, task: str | None = None,
                     tasks: str | list[str] | None = None, all_tasks: bool = False,
                     int8: bool = False, calibrate: str | Path | None = None,
-                    accept_drop: float = DEFAULT_ACCEPT_DROP) -> dict[str, Any]:
-    """``colonnade export``: write tasks as one artifact, measured, and record it."""
+                    accept_drop: float = DEFAULT_ACCEPT_DROP, by: str | None = None,
+                    reason: str | None = None, sign: str | Path | None = None,
+                    ) -> dict[str, Any]:
+    """``colonnade export``: write tasks as one artifact, measured, and record it.
+
+    ``by``, ``reason`` and ``sign`` attribute and sign the export's history entry, as for
+    every writing verb (a workspace sealed with ``--require-signed`` takes no unsigned one).
+    """
     folder, out = Path(folder), Path(out)
     kind = _output_kind(out, int8)
     if calibrate is not None and not int8:
@@ -245,7 +251,7 @@ def export_artifact(folder: str | Path, out: str | Path, task: str | None = None
         raise UsageError(f"--accept-drop takes accuracy points of at least 0, got {accept_drop}")
     staged: Path | None = None
     try:
-        with writing(folder, "export") as tx:
+        with writing(folder, "export", by=by, reason=reason, sign=sign) as tx:
             net = tx.net
             names = _selection(net, task, tasks, all_tasks)
             names = [t for t in net.tasks if t in names] + [t for t in names

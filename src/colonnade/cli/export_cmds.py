@@ -7,7 +7,7 @@ from typing import Any
 
 from .argtypes import non_negative_float
 from .output import print_json, table
-from .record_options import add_wait_option
+from .record_options import add_record_options, record_kwargs
 
 __all__ = ["add_parsers"]
 
@@ -27,7 +27,7 @@ def _export(args: argparse.Namespace) -> int:
 
     r = export_artifact(args.workspace, args.output, task=args.task, tasks=args.tasks,
                         all_tasks=args.all, int8=args.int8, calibrate=args.calibrate,
-                        accept_drop=args.accept_drop)
+                        accept_drop=args.accept_drop, **record_kwargs(args))
     if args.json:
         print_json(r)
         return 0
@@ -76,4 +76,4 @@ def add_parsers(verb: Any) -> None:
     p.add_argument("--accept-drop", type=non_negative_float, default=1.0, metavar="POINTS",
                    help="with --int8: accuracy points a sealed task may lose (default 1.0)")
     p.add_argument("--json", action="store_true")
-    add_wait_option(p)
+    add_record_options(p)
