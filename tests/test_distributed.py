@@ -60,9 +60,14 @@ def _copy(src, dst):
     return dst
 
 
-def test_two_ranks_train_a_valid_workspace(sealed_workspace, tmp_path):
+def test_two_ranks_train_a_valid_workspace(sealed_workspace, tmp_path, monkeypatch):
     tmp, ws, t1 = sealed_workspace
-    ddp_ws = _copy(ws, tmp_path / "ddp")
+    # The ranks meet through a file in the run's staging folder: a folder name that a URL
+    # would have to quote works, and no address or port of the environment is used (the
+    # ones set here lead nowhere: 192.0.2.1 is reserved for documentation, RFC 5737).
+    monkeypatch.setenv("MASTER_ADDR", "192.0.2.1")
+    monkeypatch.setenv("MASTER_PORT", "1")
+    ddp_ws = _copy(ws, tmp_path / "ddp #1 %20?x")
     one_ws = _copy(ws, tmp_path / "one")
     entry = grow_distributed(GrowRequest(str(ddp_ws), "perm1", str(tmp / "perm1.npz")), 2)
     assert entry["distributed"]["ranks"] == 2 and entry["distributed"]["backend"] == "gloo"

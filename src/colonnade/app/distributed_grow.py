@@ -48,7 +48,6 @@ from ..training.distributed import (
     DistributedHooks,
     WorkerFailed,
     fault_hook,
-    free_port,
     shard_rows,
 )
 from ..training.growth import grow
@@ -97,6 +96,7 @@ class GrowRequest:
 # Seconds a collective may wait before the process group gives up (torch's default, 30
 # minutes, when unset): tests set it short so that a lost sync fails fast with a message.
 TIMEOUT_ENV = "COLONNADE_DIST_TIMEOUT_S"
+RENDEZVOUS_FILE = "rendezvous"  # in the staging folder: where the --nproc ranks meet
 
 
 def _timeout() -> datetime.timedelta | None:
@@ -106,16 +106,18 @@ def _timeout() -> datetime.timedelta | None:
 
 def run_rank(rank: int, world: int, request: GrowRequest, staging: str | None,
              progress: bool = True, who: Attribution | None = None,
-             ) -> dict[str, Any] | None:
+             meeting: dist.Store | None = None) -> dict[str, Any] | None:
     """One rank's work: grow, train on its shard, and (rank 0) write the result, attributed
-    to ``who`` when it commits to the workspace itself (torchrun)."""
+    to ``who`` when it commits to the workspace itself (torchrun). The ranks meet through
+    the ``meeting`` store, or through the launcher's environment when it is None."""
     device = resolve_device(request.device)
     backend = "nccl" if device.type == "cuda" else "gloo"
     if device.type == "cuda":
         device = torch.device("cuda", rank % torch.cuda.device_count())
         torch.cuda.set_device(device)
     if not dist.is_initialized():
-        dist.init_process_group(backend, rank=rank, world_size=world, timeout=_timeout())
+        dist.init_process_group(backend, store=meeting, rank=rank, world_size=world,
+                                timeout=_timeout())
     try:
         net = load(request.folder)
         data = growth_data(net.spec, request.train, request.val, request.classes,
@@ -190,12 +192,16 @@ def rank_threads(world: int) -> int:
     return max(1, (os.cpu_count() or 1) // world)
 
 
-def _spawned(rank: int, world: int, port: int, request: GrowRequest, staging: str,
-             progress: bool, parent: int) -> None:
+def _spawned(rank: int, world: int, request: GrowRequest, staging: str, progress: bool,
+             parent: int) -> None:
     _die_with_parent(parent)
-    os.environ.update(MASTER_ADDR="127.0.0.1", MASTER_PORT=str(port))
     torch.set_num_threads(rank_threads(world))
-    run_rank(rank, world, request, staging, progress)
+    # The ranks meet through a file in the staging folder (torch's FileStore, given as a
+    # store, so no URL has to quote the folder's name), not a TCP port: a port found free
+    # and bound moments later can be taken by another process meanwhile, and the staging
+    # folder is this run's own and removed with it.
+    meeting = dist.FileStore(str(Path(staging).parent / RENDEZVOUS_FILE), world)
+    run_rank(rank, world, request, staging, progress, meeting=meeting)
 
 
 def _run_workers(nproc: int, args: tuple[Any, ...]) -> None:
@@ -256,7 +262,7 @@ def _grow_locked(request: GrowRequest, nproc: int, progress: bool,
     try:
         staging = str(Path(tmp) / "result")
         try:
-            _run_workers(nproc, (nproc, free_port(), request, staging, progress, os.getpid()))
+            _run_workers(nproc, (nproc, request, staging, progress, os.getpid()))
         except mp.ProcessRaisedException as exc:
             last = [line for line in str(exc).strip().splitlines() if line.strip()][-1]
             raise WorkerFailed(f"worker rank {exc.error_index} failed ({last.strip()}); the "

@@ -18,7 +18,6 @@ from __future__ import annotations
 
 import os
 import signal
-import socket
 from typing import Any
 
 import torch
@@ -30,7 +29,7 @@ from torch.utils.data import DistributedSampler
 from ..errors import ColonnadeError
 
 __all__ = ["DistributedHooks", "TrainablePath", "WorkerFailed", "launched_by_torchrun",
-           "torchrun_rank", "free_port", "shard_rows", "fault_hook", "FAULT_ENV"]
+           "torchrun_rank", "shard_rows", "fault_hook", "FAULT_ENV"]
 
 # For tests only: "RANK:EPOCH" makes that rank kill itself (SIGKILL) as that epoch starts,
 # so the failure path is exercised with a real dead process.
@@ -69,12 +68,6 @@ def launched_by_torchrun() -> bool:
 def torchrun_rank() -> int:
     """This process's rank in a torchrun launch (0 outside one)."""
     return int(os.environ.get("RANK", "0"))
-
-
-def free_port() -> int:
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 def shard_rows(n: int, rank: int, world: int, seed: int) -> torch.Tensor:
