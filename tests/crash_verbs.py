@@ -67,6 +67,10 @@ def _verbs() -> dict[str, tuple[str, Any]]:
         "adopt": ("fresh", adopt),
         "grow": ("sealed", lambda ws, c: grow_workspace(ws, "new", c["files"]["new"][0],
                                                         progress=False, by="crash test")),
+        # Two local ranks (spawned, so slow to start): the parent's steps are counted,
+        # from the lock and the staging folder to the commit and the folder's removal.
+        "grow-nproc": ("sealed", lambda ws, c: grow_workspace(
+            ws, "new", c["files"]["new"][0], progress=False, by="crash test", nproc=2)),
         "seal": ("grown", lambda ws, c: seal_workspace(ws, "new", c["files"]["new"][1],
                                                        by="crash test")),
         "seal-signed": ("grown", lambda ws, c: seal_workspace(
