@@ -34,6 +34,7 @@ from adopt_helpers import small_cnn
 from cryptography.hazmat.primitives import serialization
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
 
+import colonnade
 from colonnade.app.adopt import adopt_workspace
 from colonnade.app.evidence import check_workspace, seal_workspace
 from colonnade.app.export import export_artifact
@@ -43,8 +44,12 @@ from colonnade.cli import main
 from colonnade.errors import UsageError, WorkspaceError
 from colonnade.evidence import record
 from colonnade.evidence.integrity import verify_manifest
+from colonnade.evidence.seal import entry_digest as seal_entry_digest
+from colonnade.evidence.seal import load_probe, seal_task
 from colonnade.evidence.signing import Signer, check_signature, load_trusted, signature_report
+from colonnade.evidence.verify import check_net, check_seal, probe_for
 from colonnade.files.manifest import manifest_text
+from colonnade.model.guard import latest_seal
 
 SHAPE = (3, 16, 16)
 ONNX_TAPS = ["/2/Conv_output_0", "/4/GlobalAveragePool_output_0"]
@@ -143,6 +148,7 @@ def _listed(ws: Path, built, name: str) -> Path:
 # ----------------------------------------------------------------------------- every file
 FILE_EDITS = ["flip first byte", "flip middle byte", "flip last byte", "truncate",
               "append a byte", "empty", "delete", "symlink to a copy"]
+CLI_EDITS = ("flip middle byte", "truncate", "delete", "symlink to a copy")
 
 
 def _edit_file(path: Path, how: str, spare: Path) -> None:
@@ -180,7 +186,9 @@ def test_every_file_of_the_workspace_edited_is_caught_and_named(built, tmp_path,
         path = ws / name if name == "manifest.yaml" else _listed(ws, built, name)
         _edit_file(path, how, tmp_path / "spare")
         words = ["manifest", "workspace"] if name == "manifest.yaml" else [name]
-        _fails_naming(built, ws, capsys, *words)
+        # The whole command line for the manifest and for one edit of each kind (the seals
+        # are then read from the edited file too); the record alone for the rest.
+        _fails_naming(built, ws, capsys, *words, cli=name == "manifest.yaml" or how in CLI_EDITS)
         shutil.rmtree(ws)
 
 
@@ -574,3 +582,44 @@ def test_an_export_can_be_signed_where_every_step_must_be(built, tmp_path, capsy
     assert entry["signature"]["key"] == built["alice"]["key_id"]
     code, text = _check(ws, capsys, "--trust", built["alice"]["public"])
     assert code == 0, text
+
+
+# ----------------------------------------------------------------------------- seals alone
+def test_a_seal_checked_alone_names_a_wrong_probe_and_edited_figures(built):
+    """``check_seal`` on its own (as ``check_net`` runs it on a network in memory, with
+    probes the caller read): a probe file other than the sealed one is 'unverified', not
+    compared; a seal whose metrics were edited and whose own digest was recomputed (a
+    careful forger in a workspace without signatures) is 'moved' on its metrics."""
+    net = colonnade.load(built["ws"])
+    other = load_probe(built["root"] / "station_probe.npz", net, "station")
+    wrong = load_probe(built["root"] / "pump_train.npz", net, "pump")
+    report = check_net(net, {"station": other, "pump": wrong})
+    assert [t.verdict for t in report.tasks] == ["exact", "unverified"], report.tasks
+    assert "changed since seal v1" in report.tasks[1].failures[0]
+    entry = copy.deepcopy(latest_seal(net, "pump"))
+    confusion = entry["metrics"]["confusion"]
+    confusion[0][0], confusion[0][1] = confusion[0][0] - 1, confusion[0][1] + 1
+    entry["entry_sha256"] = seal_entry_digest(entry)
+    probe, problem = probe_for(net, "pump", entry)
+    assert problem is None
+    result = check_seal(net, "pump", entry, probe)
+    assert result.verdict == "moved" and result.max_abs_diff == 0.0, result
+    assert any("probe metrics moved" in f for f in result.failures), result.failures
+
+
+def test_a_seal_records_the_threads_and_batch_its_reference_was_computed_with(built):
+    """Invariant 8: the seal says how its reference was computed, as torch reports it
+    (``torch.get_num_threads``), and a check repeats exactly that."""
+    net = colonnade.load(built["ws"])
+    probe = load_probe(built["root"] / "pump_probe.npz", net, "pump")
+    before = torch.get_num_threads()
+    torch.set_num_threads(2)
+    try:
+        entry = seal_task(net, "pump", probe, batch_size=4, reason="threads",
+                          accept_low_accuracy=True)
+        assert entry["computation"]["threads"] == torch.get_num_threads() == 2
+    finally:
+        torch.set_num_threads(before)
+    assert entry["computation"]["batch_size"] == 4
+    kept, problem = probe_for(net, "pump", entry)
+    assert problem is None and check_seal(net, "pump", entry, kept).verdict == "exact"
