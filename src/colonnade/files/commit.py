@@ -92,17 +92,15 @@ def fsync_dir(folder: Path) -> None:
         os.close(fd)
 
 
-def write_durably(folder: Path, final: str, data: bytes) -> None:
-    """Write ``data`` to a fresh temporary file in ``folder``, fsync it, rename it to
-    ``final``: a crash leaves the old ``final`` or the new one, never half. Every step is
-    one plain system call, so a crash test can stop at each; a failure (not a crash)
-    removes the temporary file."""
-    tmp = folder / f"{_TMP_PREFIX}{os.getpid()}-{final}"
+def _write_fsynced(tmp: Path, data: bytes, mode: int) -> None:
+    """Create ``tmp`` afresh, write ``data`` whole and fsync it: the first half of both
+    durable writes below. One plain system call a step, so a crash test can stop at each.
+    O_EXCL | O_NOFOLLOW: never write through a link someone placed in the folder. A
+    failure after the file was created (a full disk) removes it."""
     if os.path.lexists(tmp):  # left by a crashed process that had the same pid
         os.unlink(tmp)
-    # O_EXCL | O_NOFOLLOW: never write through a link someone placed in the workspace.
     fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_NOFOLLOW | os.O_CLOEXEC,
-                 0o666 & ~_UMASK)
+                 mode)
     try:
         try:
             view = memoryview(data)
@@ -111,6 +109,19 @@ def write_durably(folder: Path, final: str, data: bytes) -> None:
             os.fsync(fd)
         finally:
             os.close(fd)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+
+
+def write_durably(folder: Path, final: str, data: bytes) -> None:
+    """Write ``data`` to a fresh temporary file in ``folder``, fsync it, rename it to
+    ``final``: a crash leaves the old ``final`` or the new one, never half. Every step is
+    one plain system call, so a crash test can stop at each; a failure (not a crash)
+    removes the temporary file."""
+    tmp = folder / f"{_TMP_PREFIX}{os.getpid()}-{final}"
+    _write_fsynced(tmp, data, 0o666 & ~_UMASK)
+    try:
         os.replace(tmp, folder / final)
     except BaseException:
         tmp.unlink(missing_ok=True)
@@ -126,18 +137,8 @@ def write_new_durably(final: Path, data: bytes, mode: int = 0o666) -> None:
     the temporary file is renamed instead after checking that ``final`` is absent.
     """
     tmp = final.with_name(f".{final.name}.{os.getpid()}.tmp")
-    if os.path.lexists(tmp):  # left by a crashed process that had the same pid
-        os.unlink(tmp)
-    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_NOFOLLOW | os.O_CLOEXEC,
-                 mode)
+    _write_fsynced(tmp, data, mode)
     try:
-        try:
-            view = memoryview(data)
-            while view:
-                view = view[os.write(fd, view):]
-            os.fsync(fd)
-        finally:
-            os.close(fd)
         try:
             os.link(tmp, final)
         except FileExistsError:
