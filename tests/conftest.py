@@ -7,6 +7,9 @@ scikit-learn (``sklearn.datasets.load_digits``), so no download is needed.
 from __future__ import annotations
 
 import os
+import shutil
+import subprocess
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -39,6 +42,25 @@ def _clear_callers_settings() -> list[str]:
 
 
 _clear_callers_settings()
+
+SRC = Path(__file__).resolve().parent.parent / "src"
+
+
+def child_env(**extra: str) -> dict[str, str]:
+    """The environment for a colonnade child process: this checkout's ``src`` first on
+    PYTHONPATH (so the child runs the code under test, not an installed copy), the
+    caller's settings already cleared above, plus ``extra``."""
+    path = f"{SRC}{os.pathsep}{os.environ.get('PYTHONPATH', '')}"
+    return {**os.environ, "PYTHONPATH": path, **extra}
+
+
+def strace_path() -> str | None:
+    """strace's path when it can trace here (ptrace may be forbidden in a container)."""
+    path = shutil.which("strace")
+    if path is None:
+        return None
+    probe = subprocess.run([path, "-qq", "-o", os.devnull, "true"], capture_output=True)
+    return path if probe.returncode == 0 else None
 
 DIGITS_SPEC = {
     "name": "digits-mlp",

@@ -25,13 +25,13 @@ import sys
 from pathlib import Path
 
 import pytest
+from conftest import child_env, strace_path
 
 HERE = Path(__file__).resolve().parent
-SRC = HERE.parent / "src"
 
 
 def _driver(base: Path, out: Path, cases) -> list[dict]:
-    env = {**os.environ, "PYTHONPATH": f"{SRC}{os.pathsep}{os.environ.get('PYTHONPATH', '')}"}
+    env = child_env()
     done = subprocess.run([sys.executable, str(HERE / "crash_driver.py"), str(base), str(out),
                            json.dumps(cases)], capture_output=True, text=True, env=env,
                           timeout=600)
@@ -96,7 +96,7 @@ VERBS = ["new", "adopt", "grow", "seal", "seal-signed", "unseal", "usage", "trim
 
 
 def _verbs_driver(base: Path, out: Path, plan) -> list[dict]:
-    env = {**os.environ, "PYTHONPATH": f"{SRC}{os.pathsep}{os.environ.get('PYTHONPATH', '')}"}
+    env = child_env()
     done = subprocess.run([sys.executable, str(HERE / "crash_verbs.py"), str(base), str(out),
                            json.dumps(plan)], capture_output=True, text=True, env=env,
                           timeout=900)
@@ -127,21 +127,11 @@ def test_a_crash_in_every_writing_verb_leaves_one_whole_generation(tmp_path):
 
 
 # ------------------------------------------------------------------ strace, real commands
-def _strace_works() -> str | None:
-    """strace's path when it can trace here (ptrace may be forbidden in a container)."""
-    path = shutil.which("strace")
-    if path is None:
-        return None
-    probe = subprocess.run([path, "-qq", "-o", os.devnull, "true"], capture_output=True)
-    return path if probe.returncode == 0 else None
-
-
-STRACE = _strace_works()
+STRACE = strace_path()
 
 
 def _cli(*args, strace: list[str] | None = None, cwd=None) -> subprocess.CompletedProcess:
-    env = {**os.environ, "PYTHONDONTWRITEBYTECODE": "1",
-           "PYTHONPATH": f"{SRC}{os.pathsep}{os.environ.get('PYTHONPATH', '')}"}
+    env = child_env(PYTHONDONTWRITEBYTECODE="1")
     command = [sys.executable, "-m", "colonnade", *args]
     return subprocess.run([*(strace or []), *command], capture_output=True, text=True,
                           env=env, timeout=300, cwd=cwd)

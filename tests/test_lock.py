@@ -20,7 +20,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 import torch
-from conftest import snapshot
+from conftest import child_env, snapshot, strace_path
 
 from colonnade.app.record import verify_record
 from colonnade.app.transaction import lock_wait
@@ -28,8 +28,7 @@ from colonnade.app.workspace import grow_workspace, new_workspace
 from colonnade.errors import BusyError
 from colonnade.files import store
 
-SRC = Path(__file__).resolve().parent.parent / "src"
-ENV = {**os.environ, "PYTHONPATH": f"{SRC}{os.pathsep}{os.environ.get('PYTHONPATH', '')}"}
+ENV = child_env()
 SPEC = ("input: [8]\ncolumn:\n  - dense: 12\n  - act: relu\nlateral: {kind: linear}\n"
         "train: {epochs: 2, batch_size: 32, seed: 0}\n")
 
@@ -244,18 +243,7 @@ def test_a_commit_beside_a_reader_leaves_old_files_but_no_false_recovery(small, 
     assert [e.get("step") for e in store.load(ws).meta["history"]].count("recovered") == 0
 
 
-def _strace() -> str | None:
-    """strace's path when it can trace here (ptrace may be forbidden in a container)."""
-    import shutil
-
-    path = shutil.which("strace")
-    if path is None:
-        return None
-    probe = subprocess.run([path, "-qq", "-o", os.devnull, "true"], capture_output=True)
-    return path if probe.returncode == 0 else None
-
-
-STRACE = _strace()
+STRACE = strace_path()
 
 
 @pytest.mark.skipif(STRACE is None, reason="strace is missing or may not trace here (make "

@@ -21,6 +21,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from conftest import child_env
 
 from colonnade.app.lifecycle import retire_workspace
 from colonnade.app.record import verify_record
@@ -29,8 +30,7 @@ from colonnade.app.workspace import grow_workspace, new_workspace
 from colonnade.files.manifest import read_manifest
 from colonnade.files.staging import STAGING_PREFIX
 
-SRC = Path(__file__).resolve().parent.parent / "src"
-ENV = {**os.environ, "PYTHONPATH": f"{SRC}{os.pathsep}{os.environ.get('PYTHONPATH', '')}"}
+ENV = child_env()
 SPEC = ("input: [8]\ncolumn:\n  - dense: 12\n  - act: relu\nlateral: {kind: linear}\n"
         "train: {epochs: 2, batch_size: 32, seed: 0}\n")
 
