@@ -24,10 +24,12 @@ import math
 from dataclasses import dataclass
 from typing import Any
 
+import numpy as np
 import torch
 from torch.utils.flop_counter import FlopCounterMode
 
 from ..model.adopted import AdoptedColumn
+from ..model.taps import onnx_session
 
 __all__ = ["AdoptedCost", "adopted_cost", "onnx_graph_macs"]
 
@@ -70,9 +72,7 @@ def _pinned(model: Any, input_shape: tuple[int, ...]) -> Any:
 def _measured(model: Any, names: list[str]) -> dict[str, list[int]]:
     """Shapes shape inference could not tell (a Reshape to a size computed from the
     input's Shape, say), read from one onnxruntime run of the pinned model on zeros."""
-    import numpy as np
     import onnx
-    import onnxruntime as ort
 
     probe = onnx.ModelProto()
     probe.CopyFrom(model)
@@ -86,11 +86,7 @@ def _measured(model: Any, names: list[str]) -> dict[str, list[int]]:
     inits = {i.name for i in probe.graph.initializer}
     value = next(i for i in probe.graph.input if i.name not in inits)
     dims = [d.dim_value for d in value.type.tensor_type.shape.dim]
-    options = ort.SessionOptions()
-    options.intra_op_num_threads = 1
-    options.log_severity_level = 3  # errors only, as every session of colonnade's
-    session = ort.InferenceSession(probe.SerializeToString(), options,
-                                   providers=["CPUExecutionProvider"])
+    session = onnx_session(probe.SerializeToString(), "the ONNX model")
     outs = session.run(names, {value.name: np.zeros(dims, np.float32)})
     return {name: list(out.shape) for name, out in zip(names, outs, strict=True)}
 

@@ -26,7 +26,7 @@ import torch.nn as nn
 from ..errors import DataError, UsageError
 from .layers import Shape
 
-__all__ = ["ModuleTaps", "OnnxTaps", "ORT_SETTINGS", "nearest_names"]
+__all__ = ["ModuleTaps", "OnnxTaps", "ORT_SETTINGS", "nearest_names", "onnx_session"]
 
 # onnxruntime session settings of every adopted ONNX column (and of the proof run).
 ORT_SETTINGS = {"intra_op_num_threads": 1, "inter_op_num_threads": 1,
@@ -175,6 +175,13 @@ class OnnxTaps:
         outs = self.session.run([self.output_name, *self.taps], feed)
         tensors = [torch.from_numpy(np.ascontiguousarray(o)).to(x.device) for o in outs]
         return tensors[1:], tensors[0]
+
+
+def onnx_session(data: bytes, path: str) -> Any:
+    """An onnxruntime session on ``data`` with the adopted column's ``ORT_SETTINGS`` (one
+    thread, sequential, errors-only log), refused in one sentence if it cannot run."""
+    _, ort = _import_onnx()
+    return _session(ort, data, path)
 
 
 def _session(ort: Any, data: bytes, path: str) -> Any:
